@@ -1,0 +1,1 @@
+"""Storage backends behind one small interface (:class:`~model_store.backends.base.Backend`)."""

@@ -1,0 +1,373 @@
+"""The store: publishing and loading immutable versions, and the routing state of each model.
+
+Safe to use from several threads and processes at once: nothing is cached, every write is a
+whole object, and the writes that must not race (a version's manifest, a routing record) are
+create-if-absent on the backend.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any
+
+from model_store import artifact, routing
+from model_store.artifact import COEFFICIENTS, COVARIANCE, MANIFEST, FileFormatError
+from model_store.backends.base import Backend, KeyExists, KeyMissing
+from model_store.errors import (
+    ArtifactError,
+    NotFound,
+    RoutingConflict,
+    RoutingError,
+    StoreError,
+    VersionExists,
+)
+from model_store.routing import RoutingState
+from service.choice.spec import (
+    NAME_PATTERN,
+    Coefficients,
+    ModelSpec,
+    SpecError,
+    spec_from_dict,
+    spec_to_dict,
+    validate_model,
+)
+
+
+@dataclass(frozen=True)
+class LoadedVersion:
+    """A verified version: its spec, its coefficients and its manifest (a plain dict)."""
+
+    spec: ModelSpec
+    coefficients: Coefficients
+    manifest: Mapping[str, Any]
+
+    @property
+    def model(self) -> str:
+        return self.manifest["model"]
+
+    @property
+    def version(self) -> str:
+        return self.manifest["version"]
+
+
+def natural_key(name: str) -> tuple[Any, ...]:
+    """Sort key putting v2 before v10 (digits compare as numbers)."""
+    return tuple(int(p) if p.isdigit() else p for p in re.split(r"(\d+)", name))
+
+
+def check_name(kind: str, name: str) -> None:
+    if not isinstance(name, str) or not NAME_PATTERN.match(name):
+        raise StoreError(
+            f"{kind}: {name!r} is not a valid name (1-64 letters, digits, '_', '.', '-', "
+            "starting with a letter or '_')"
+        )
+
+
+def _version_prefix(model: str, version: str) -> str:
+    return f"models/{model}/versions/{version}/"
+
+
+class Store:
+    """One store, on any backend. See docs/artifact-format.md for the layout."""
+
+    def __init__(self, backend: Backend):
+        self.backend = backend
+
+    @property
+    def uri(self) -> str:
+        return self.backend.uri
+
+    def check(self) -> None:
+        """Raise :class:`~model_store.errors.StoreUnavailable` unless the store answers."""
+        self.backend.check()
+
+    # -- versions -----------------------------------------------------------------------
+
+    def list_models(self) -> list[str]:
+        """Models with at least one published version, sorted."""
+        models = set()
+        for key in self.backend.list("models/"):
+            parts = key.split("/")
+            if len(parts) == 5 and parts[2] == "versions" and parts[4] == MANIFEST:
+                models.add(parts[1])
+        return sorted(models, key=natural_key)
+
+    def list_versions(self, model: str) -> list[str]:
+        """Published versions of ``model`` (those whose manifest exists), in natural order.
+
+        Leftovers of an interrupted publish (files without a manifest) are not listed.
+        """
+        check_name("model", model)
+        versions = []
+        for key in self.backend.list(f"models/{model}/versions/"):
+            parts = key.split("/")
+            if len(parts) == 5 and parts[4] == MANIFEST:
+                versions.append(parts[3])
+        return sorted(versions, key=natural_key)
+
+    def read_manifest(self, model: str, version: str) -> dict[str, Any]:
+        """The manifest of a published version (envelope checked, files not verified)."""
+        check_name("model", model)
+        check_name("version", version)
+        try:
+            data = self.backend.get(_version_prefix(model, version) + MANIFEST)
+        except KeyMissing:
+            if model not in self.list_models():
+                raise NotFound(f"model {model!r} not found in {self.uri}") from None
+            raise NotFound(f"version {version!r} of model {model!r} not found") from None
+        try:
+            manifest = artifact.parse_manifest(data)
+        except FileFormatError as exc:
+            raise ArtifactError(model, version, exc.file, str(exc)) from None
+        if manifest["model"] != model or manifest["version"] != version:
+            raise ArtifactError(
+                model, version, MANIFEST, "names a different model or version than its location"
+            )
+        return manifest
+
+    def load_version(self, model: str, version: str) -> LoadedVersion:
+        """Load a version, verifying format version, every checksum and the model itself.
+
+        Raises :class:`NotFound` or :class:`ArtifactError` (naming the file at fault).
+        """
+        manifest = self.read_manifest(model, version)
+        prefix = _version_prefix(model, version)
+        blobs: dict[str, bytes] = {}
+        for name, digest in manifest["files"].items():
+            try:
+                data = self.backend.get(prefix + name)
+            except KeyMissing:
+                raise ArtifactError(model, version, name, "missing") from None
+            if artifact.sha256(data) != digest:
+                raise ArtifactError(
+                    model, version, name, "checksum mismatch (the file was changed or truncated)"
+                )
+            blobs[name] = data
+        try:
+            names, est, se = artifact.read_coefficients(blobs[COEFFICIENTS])
+            cov = (
+                artifact.read_covariance(blobs[COVARIANCE], names) if COVARIANCE in blobs else None
+            )
+        except FileFormatError as exc:
+            raise ArtifactError(model, version, exc.file, str(exc)) from None
+        try:
+            spec = spec_from_dict(manifest["spec"])
+            coefficients = Coefficients(names=names, estimates=est, std_errors=se, covariance=cov)
+            validate_model(spec, coefficients)
+        except SpecError as exc:
+            raise ArtifactError(model, version, MANIFEST, f"invalid model: {exc}") from None
+        if manifest["family"] != spec.family:
+            raise ArtifactError(model, version, MANIFEST, "family differs from the spec's")
+        return LoadedVersion(spec=spec, coefficients=coefficients, manifest=manifest)
+
+    def publish(
+        self,
+        model: str,
+        version: str,
+        spec: ModelSpec,
+        coefficients: Coefficients,
+        *,
+        published_by: str,
+        estimation: Mapping[str, Any] | None = None,
+        parent: str | None = None,
+        calibration: Mapping[str, Any] | None = None,
+    ) -> dict[str, Any]:
+        """Validate and write a new version; returns its manifest.
+
+        Data files first, the manifest last and create-if-absent: a publish interrupted at any
+        point leaves no visible version, and its leftovers are replaced by the next attempt.
+        Raises :class:`SpecError` (invalid model), :class:`VersionExists` (never overwrites).
+        """
+        check_name("model", model)
+        check_name("version", version)
+        if spec.name != model:
+            raise StoreError(f"model: the spec is named {spec.name!r}, not {model!r}")
+        validate_model(spec, coefficients)
+        estimation = artifact.check_estimation(estimation)
+        if parent is not None and parent not in self.list_versions(model):
+            raise NotFound(f"parent: version {parent!r} of model {model!r} not found")
+        prefix = _version_prefix(model, version)
+        if self.backend.exists(prefix + MANIFEST):
+            raise VersionExists(f"version {version!r} of model {model!r} is already published")
+        blobs = {COEFFICIENTS: artifact.coefficients_bytes(coefficients)}
+        if coefficients.covariance is not None:
+            blobs[COVARIANCE] = artifact.covariance_bytes(coefficients)
+        for name, data in blobs.items():
+            self.backend.put(prefix + name, data)
+        manifest = artifact.build_manifest(
+            model=model,
+            version=version,
+            spec=spec,
+            spec_dict=spec_to_dict(spec),
+            files={name: artifact.sha256(data) for name, data in blobs.items()},
+            published_by=published_by,
+            estimation=estimation,
+            parent=parent,
+            calibration=calibration,
+        )
+        try:
+            self.backend.put_new(prefix + MANIFEST, artifact.manifest_bytes(manifest))
+        except KeyExists:
+            raise VersionExists(
+                f"version {version!r} of model {model!r} was published meanwhile by someone else"
+            ) from None
+        self.load_version(model, version)  # read back: refuse to report success unverified
+        return manifest
+
+    # -- routing ------------------------------------------------------------------------
+
+    def _generations(self, model: str) -> list[int]:
+        gens = (routing.generation_of_key(k) for k in self.backend.list(f"models/{model}/routing/"))
+        return sorted(g for g in gens if g is not None)
+
+    def routing_generation(self, model: str) -> int:
+        """The current routing generation of ``model`` (0 when never routed): a cheap poll."""
+        check_name("model", model)
+        gens = self._generations(model)
+        return gens[-1] if gens else 0
+
+    def generations(self) -> dict[str, int]:
+        """The current routing generation of every model with a version, in one listing."""
+        out: dict[str, int] = {}
+        for key in self.backend.list("models/"):
+            parts = key.split("/")
+            if len(parts) == 5 and parts[2] == "versions" and parts[4] == MANIFEST:
+                out.setdefault(parts[1], 0)
+            elif len(parts) == 4 and parts[2] == "routing":
+                gen = routing.generation_of_key(key)
+                if gen is not None:
+                    out[parts[1]] = max(out.get(parts[1], 0), gen)
+        return out
+
+    def _read_state(self, model: str, generation: int) -> RoutingState:
+        if generation == 0:
+            return routing.empty_state(model)
+        try:
+            data = self.backend.get(routing.record_key(model, generation))
+        except KeyMissing:
+            raise RoutingError(f"routing generation {generation} of {model!r} not found") from None
+        return routing.decode(model, generation, data)
+
+    def get_routing(self, model: str) -> RoutingState:
+        """The current routing state (generation 0, empty, when never routed)."""
+        return self._read_state(model, self.routing_generation(model))
+
+    def history(self, model: str) -> list[RoutingState]:
+        """Every routing change of ``model``, oldest first."""
+        check_name("model", model)
+        return [self._read_state(model, g) for g in self._generations(model)]
+
+    def change_routing(
+        self,
+        model: str,
+        live: Mapping[str, float],
+        shadow: str | None = None,
+        *,
+        reason: str,
+        changed_by: str,
+        expected_generation: int | None = None,
+        action: str = "route",
+        restored_generation: int | None = None,
+    ) -> RoutingState:
+        """Record a new routing state; returns it.
+
+        ``expected_generation`` is the generation the change was computed from (default: the
+        current one, read now). If another change was recorded since, :class:`RoutingConflict`
+        is raised and nothing is written. Every live version and the shadow must load
+        (checksums verified), else :class:`RoutingError` / :class:`ArtifactError`.
+        """
+        check_name("model", model)
+        if action not in routing.ACTIONS:
+            raise RoutingError(f"action: must be one of {', '.join(routing.ACTIONS)}")
+        weights = routing.check_change(live, shadow, reason)
+        current = self.routing_generation(model)
+        base = current if expected_generation is None else expected_generation
+        if base != current:
+            raise RoutingConflict(model, base, current)
+        published = set(self.list_versions(model))
+        if not published:
+            raise NotFound(f"model {model!r} not found in {self.uri}")
+        for version in [*weights, *([shadow] if shadow is not None else [])]:
+            where = "shadow" if version == shadow and version not in weights else f"live.{version}"
+            if version not in published:
+                raise RoutingError(f"{where}: version {version!r} of {model!r} is not published")
+            try:
+                self.load_version(model, version)
+            except ArtifactError as exc:
+                raise RoutingError(f"{where}: version {version!r} does not load: {exc}") from None
+        state = RoutingState(
+            model=model,
+            generation=base + 1,
+            live=weights,
+            shadow=shadow,
+            previous_generation=base,
+            action=action,
+            changed_by=changed_by,
+            changed_at=artifact.now_iso(),
+            reason=reason.strip(),
+            restored_generation=restored_generation,
+        )
+        try:
+            self.backend.put_new(routing.record_key(model, state.generation), routing.encode(state))
+        except KeyExists:
+            raise RoutingConflict(model, base, self.routing_generation(model)) from None
+        return state
+
+    def promote(
+        self,
+        model: str,
+        version: str,
+        *,
+        changed_by: str,
+        reason: str | None = None,
+        expected_generation: int | None = None,
+    ) -> RoutingState:
+        """Route 100% of live traffic to ``version``; a shadow equal to it is cleared."""
+        current = self.get_routing(model)
+        base = current.generation if expected_generation is None else expected_generation
+        shadow = current.shadow if current.shadow != version else None
+        return self.change_routing(
+            model,
+            {version: 1.0},
+            shadow,
+            reason=reason or f"promote {version} to 100%",
+            changed_by=changed_by,
+            expected_generation=base,
+            action="promote",
+        )
+
+    def rollback(
+        self,
+        model: str,
+        *,
+        changed_by: str,
+        reason: str | None = None,
+        expected_generation: int | None = None,
+    ) -> RoutingState:
+        """Record a new generation restoring the state before the current one.
+
+        Rolling back twice in a row therefore undoes the first rollback.
+        """
+        current = self.get_routing(model)
+        if expected_generation is not None and expected_generation != current.generation:
+            raise RoutingConflict(model, expected_generation, current.generation)
+        if current.generation == 0:
+            raise RoutingError(f"{model!r} has never been routed; nothing to roll back")
+        previous = self._read_state(model, current.generation - 1)
+        if previous.is_empty:
+            raise RoutingError(
+                f"generation {current.generation} is the first routing of {model!r}; "
+                "there is no earlier state to restore"
+            )
+        return self.change_routing(
+            model,
+            previous.live,
+            previous.shadow,
+            reason=reason or f"roll back generation {current.generation}",
+            changed_by=changed_by,
+            expected_generation=current.generation,
+            action="rollback",
+            restored_generation=previous.generation,
+        )
