@@ -1,0 +1,35 @@
+"""Weighted aggregation over a batch by sample enumeration (Train 2009, sec. 3.6.1, from memory).
+
+Share_i = sum_n w_n P_ni / sum_n w_n;  aggregate elasticity
+E_ij = sum_n w_n P_ni E_nij / sum_n w_n P_ni (0 where alternative i is never chosen with
+positive probability).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+
+@dataclass(frozen=True, eq=False)
+class AggregateResult:
+    shares: np.ndarray
+    """(J,)"""
+    elasticities: dict[str, np.ndarray] = field(default_factory=dict)
+    """By name: (J, J) for an attribute, (J,) for a context variable."""
+
+
+def shares(p: np.ndarray, weights: np.ndarray) -> np.ndarray:
+    """Weighted shares from P (J, N)."""
+    return p @ weights / weights.sum()
+
+
+def aggregate_elasticity(p: np.ndarray, weights: np.ndarray, e: np.ndarray) -> np.ndarray:
+    """From P (J, N) and E (J, J, N) or (J, N); probability-weighted mean over situations."""
+    wp = p * weights
+    denom = wp.sum(axis=1)
+    num = np.einsum("ijn,in->ij", e, wp) if e.ndim == 3 else np.einsum("in,in->i", e, wp)
+    safe = np.where(denom > 0, denom, 1.0)
+    out = num / (safe[:, None] if e.ndim == 3 else safe)
+    return np.where((denom > 0)[:, None] if e.ndim == 3 else denom > 0, out, 0.0)

@@ -1,0 +1,135 @@
+"""A batch of choice situations as arrays, and its construction from plain records."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from service.choice.compiled import CompiledModel
+
+RECORD_KEYS = ("id", "attributes", "context", "available", "weight")
+
+
+@dataclass(frozen=True)
+class BatchProblem:
+    """One bad value of a batch: situation index (-1: the whole batch) and field path."""
+
+    situation: int
+    field: tuple[str, ...]
+    message: str
+
+
+@dataclass(frozen=True, eq=False)
+class Batch:
+    """N choice situations; axes ordered as the compiled model's tuples.
+
+    ``attributes`` (N, J, A) float64, ``context`` (N, C) float64, ``available`` (N, J)
+    bool, ``weights`` (N,) float64.  Cells an alternative does not use are ignored.
+    """
+
+    attributes: np.ndarray
+    context: np.ndarray
+    available: np.ndarray
+    weights: np.ndarray
+
+    @property
+    def size(self) -> int:
+        return int(self.attributes.shape[0])
+
+    @classmethod
+    def from_records(
+        cls, model: CompiledModel, situations: Sequence[Any]
+    ) -> tuple[Batch, tuple[BatchProblem, ...]]:
+        """Fill arrays from plain dicts, never refusing: returns (batch, problems).
+
+        A record is ``{"attributes": {alt: {attr: value}}, "context": {name: value},
+        "available": {alt: bool}, "weight": w}`` (availability defaults to all true, the
+        weight to 1; an ``id`` key is ignored).  Missing values the model uses become NaN
+        (reported by :func:`check_batch`); unused ones 0.  Unknown names and values of the
+        wrong type are reported in ``problems``, their cells left NaN.
+        """
+        n, n_j, n_a, n_c = len(situations), *_sizes(model)
+        x = np.where(model.required, np.nan, 0.0)[None].repeat(n, axis=0)
+        z = np.where(model.required_context_mask, np.nan, 0.0)[None].repeat(n, axis=0)
+        available = np.ones((n, n_j), dtype=bool)
+        weights = np.ones(n)
+        j_of = {a: i for i, a in enumerate(model.alternatives)}
+        a_of = {a: i for i, a in enumerate(model.attributes)}
+        c_of = {c: i for i, c in enumerate(model.context)}
+        problems: list[BatchProblem] = []
+
+        def bad(i: int, message: str, *path: str) -> None:
+            problems.append(BatchProblem(i, tuple(path), message))
+
+        for i, rec in enumerate(situations):
+            if not isinstance(rec, Mapping):
+                bad(i, "must be an object")
+                continue
+            for key in rec:
+                if key not in RECORD_KEYS:
+                    bad(i, "unknown field", str(key))
+            attrs = rec.get("attributes", {})
+            if not isinstance(attrs, Mapping):
+                bad(i, "must be an object keyed by alternative", "attributes")
+                attrs = {}
+            for alt, values in attrs.items():
+                if alt not in j_of:
+                    bad(i, "not an alternative of the model", "attributes", str(alt))
+                    continue
+                if not isinstance(values, Mapping):
+                    bad(i, "must be an object keyed by attribute", "attributes", alt)
+                    continue
+                for name, value in values.items():
+                    if name not in a_of:
+                        bad(i, "not an attribute of the model", "attributes", alt, str(name))
+                    elif (v := _number(value)) is None:
+                        bad(i, "must be a number", "attributes", alt, name)
+                    else:
+                        x[i, j_of[alt], a_of[name]] = v
+            ctx = rec.get("context", {})
+            if not isinstance(ctx, Mapping):
+                bad(i, "must be an object keyed by context variable", "context")
+                ctx = {}
+            for name, value in ctx.items():
+                if name not in c_of:
+                    bad(i, "not a context variable of the model", "context", str(name))
+                elif (v := _number(value)) is None:
+                    bad(i, "must be a number", "context", name)
+                else:
+                    z[i, c_of[name]] = v
+            avail = rec.get("available", {})
+            if not isinstance(avail, Mapping):
+                bad(i, "must be an object keyed by alternative", "available")
+                avail = {}
+            for alt, flag in avail.items():
+                if alt not in j_of:
+                    bad(i, "not an alternative of the model", "available", str(alt))
+                elif not isinstance(flag, bool):
+                    bad(i, "must be true or false", "available", alt)
+                else:
+                    available[i, j_of[alt]] = flag
+            if "weight" in rec:
+                w = _number(rec["weight"])
+                if w is None:
+                    bad(i, "must be a number", "weight")
+                weights[i] = np.nan if w is None else w
+        del n_a, n_c
+        return cls(attributes=x, context=z, available=available, weights=weights), tuple(problems)
+
+
+def _sizes(model: CompiledModel) -> tuple[int, int, int]:
+    return len(model.alternatives), len(model.attributes), len(model.context)
+
+
+def _number(value: Any) -> float | None:
+    """A JSON number as float (non-finite allowed: check_batch reports it), else None."""
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        return None
+    try:
+        return float(value)
+    except OverflowError:
+        return math.inf if value > 0 else -math.inf

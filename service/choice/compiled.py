@@ -1,0 +1,191 @@
+"""A validated model compiled once into index and coefficient arrays.
+
+Axes: J alternatives (``CompiledModel.alternatives``), A attributes (``.attributes``),
+C context variables (``.context``), K coefficients (``.coefficients.names``), M nests.
+
+Utility (Train 2009, sec. 2.5 and 3.1):  V_j = sum_t beta[k_t] * t(x[j_t, a_t]) * z[c_t].
+Terms of the form beta * x (identity, no context) are folded into a dense block
+``linear`` (J, A); terms with no attribute and no context into ``constants`` (J,); every
+other term (a transform or a context interaction) is kept in ``general_terms``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from service.choice.spec import Coefficients, ModelSpec, validate_model
+
+IDENTITY, LOG, LOG1P = 0, 1, 2
+TRANSFORM_CODES = {"identity": IDENTITY, "log": LOG, "log1p": LOG1P}
+NONE = -1
+"""Index meaning "no attribute" / "no context variable" / "no nest"."""
+
+
+@dataclass(frozen=True)
+class TermArrays:
+    """Every utility term as parallel index arrays of length T."""
+
+    alternative: np.ndarray
+    attribute: np.ndarray
+    """Attribute index, or NONE for a constant."""
+    context: np.ndarray
+    """Context index, or NONE."""
+    transform: np.ndarray
+    coefficient: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.alternative)
+
+    def select(self, mask: np.ndarray) -> TermArrays:
+        return TermArrays(
+            alternative=self.alternative[mask],
+            attribute=self.attribute[mask],
+            context=self.context[mask],
+            transform=self.transform[mask],
+            coefficient=self.coefficient[mask],
+        )
+
+
+@dataclass(frozen=True, eq=False)
+class CompiledModel:
+    """A model version ready to score batches (build it with :func:`compile_model`)."""
+
+    spec: ModelSpec
+    coefficients: Coefficients
+    alternatives: tuple[str, ...]
+    attributes: tuple[str, ...]
+    context: tuple[str, ...]
+    cost_attribute: str | None
+    beta: np.ndarray
+    """Coefficient estimates (K,), ordered as ``coefficients.names``."""
+    terms: TermArrays
+    """All utility terms (for derivatives and the design of V in beta)."""
+    linear: np.ndarray
+    """(J, A): summed beta of identity, context-free attribute terms."""
+    constants: np.ndarray
+    """(J,): summed alternative-specific constants."""
+    general_terms: TermArrays
+    """Terms with a transform or a context variable, evaluated one by one over the batch."""
+    required: np.ndarray
+    """(J, A) bool: cells some term of the alternative uses."""
+    required_context_mask: np.ndarray
+    """(C,) bool: context variables some term uses."""
+    log_cells: np.ndarray
+    """(J, A) bool: cells under a log transform (need x > 0)."""
+    log1p_cells: np.ndarray
+    """(J, A) bool: cells under a log1p transform (need x > -1)."""
+    nest_ids: tuple[str, ...] = ()
+    nest_of: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.intp))
+    """(J,) nest index of each alternative (empty for binary / multinomial)."""
+    nest_scale_index: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.intp))
+    """(M,) coefficient index of each nest's scale."""
+    nest_scales: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    """(M,) scale (lambda) of each nest."""
+
+    @property
+    def nested(self) -> bool:
+        return len(self.nest_ids) > 0
+
+    @property
+    def required_attributes(self) -> tuple[tuple[str, str], ...]:
+        """(alternative, attribute) pairs the model uses: what a request must supply."""
+        js, as_ = np.nonzero(self.required)
+        return tuple(
+            (self.alternatives[j], self.attributes[a]) for j, a in zip(js, as_, strict=True)
+        )
+
+    @property
+    def required_context(self) -> tuple[str, ...]:
+        """Context variables the model uses."""
+        return tuple(
+            c for c, used in zip(self.context, self.required_context_mask, strict=False) if used
+        )
+
+    def alternative_index(self, alternative: str) -> int:
+        return self.alternatives.index(alternative)
+
+    def attribute_index(self, attribute: str) -> int:
+        return self.attributes.index(attribute)
+
+
+def compile_model(spec: ModelSpec, coefficients: Coefficients) -> CompiledModel:
+    """Validate (:func:`validate_model`, raises ``SpecError``) and compile into arrays."""
+    validate_model(spec, coefficients)
+    alternatives = spec.alternative_ids
+    attributes = tuple(v.name for v in spec.attributes)
+    context = tuple(v.name for v in spec.context)
+    j_of = {a: i for i, a in enumerate(alternatives)}
+    a_of = {a: i for i, a in enumerate(attributes)}
+    c_of = {c: i for i, c in enumerate(context)}
+    k_of = {n: i for i, n in enumerate(coefficients.names)}
+    beta = np.array(coefficients.estimates, dtype=np.float64)
+    beta.setflags(write=False)
+
+    rows = [
+        (
+            j_of[alt],
+            NONE if t.attribute is None else a_of[t.attribute],
+            NONE if t.context is None else c_of[t.context],
+            TRANSFORM_CODES[t.transform],
+            k_of[t.coefficient],
+        )
+        for alt in alternatives
+        for t in spec.utilities.get(alt, ())
+    ]
+    cols = np.array(rows, dtype=np.intp).reshape(-1, 5).T
+    terms = TermArrays(*(np.ascontiguousarray(c) for c in cols))
+
+    n_j, n_a, n_c = len(alternatives), len(attributes), len(context)
+    linear = np.zeros((n_j, n_a))
+    constants = np.zeros(n_j)
+    is_linear = (terms.attribute != NONE) & (terms.transform == IDENTITY) & (terms.context == NONE)
+    is_constant = (terms.attribute == NONE) & (terms.context == NONE)
+    np.add.at(
+        linear,
+        (terms.alternative[is_linear], terms.attribute[is_linear]),
+        beta[terms.coefficient[is_linear]],
+    )
+    np.add.at(constants, terms.alternative[is_constant], beta[terms.coefficient[is_constant]])
+    general = terms.select(~is_linear & ~is_constant)
+
+    def cells(mask: np.ndarray) -> np.ndarray:
+        out = np.zeros((n_j, n_a), dtype=bool)
+        out[terms.alternative[mask], terms.attribute[mask]] = True
+        return out
+
+    has_attr = terms.attribute != NONE
+    required_context_mask = np.zeros(n_c, dtype=bool)
+    required_context_mask[terms.context[terms.context != NONE]] = True
+
+    nest_kwargs = {}
+    if spec.nests:
+        nest_of = np.full(n_j, NONE, dtype=np.intp)
+        for m, nest in enumerate(spec.nests):
+            nest_of[[j_of[a] for a in nest.alternatives]] = m
+        scale_index = np.array([k_of[n.scale] for n in spec.nests], dtype=np.intp)
+        nest_kwargs = {
+            "nest_ids": tuple(n.id for n in spec.nests),
+            "nest_of": nest_of,
+            "nest_scale_index": scale_index,
+            "nest_scales": beta[scale_index],
+        }
+    return CompiledModel(
+        spec=spec,
+        coefficients=coefficients,
+        alternatives=alternatives,
+        attributes=attributes,
+        context=context,
+        cost_attribute=spec.cost_attribute,
+        beta=beta,
+        terms=terms,
+        linear=linear,
+        constants=constants,
+        general_terms=general,
+        required=cells(has_attr),
+        required_context_mask=required_context_mask,
+        log_cells=cells(has_attr & (terms.transform == LOG)),
+        log1p_cells=cells(has_attr & (terms.transform == LOG1P)),
+        **nest_kwargs,
+    )

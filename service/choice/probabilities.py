@@ -1,0 +1,127 @@
+"""Logit and nested logit probabilities and logsums, stable at extreme utilities.
+
+All arrays are alternative-major, (J, N).  Unavailable alternatives have utility -inf,
+probability exactly 0 and take no part in any sum.  Every exponent is shifted by its
+maximum (log-sum-exp; common practice), so utilities of +-1e4 neither overflow nor give NaN.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from service.choice.compiled import CompiledModel
+from service.choice.errors import ScoringError
+from service.choice.spec import Problem
+
+
+@dataclass(frozen=True, eq=False)
+class ChoiceState:
+    """Probabilities and the intermediate quantities derivatives need."""
+
+    probabilities: np.ndarray
+    """P (J, N)."""
+    logsum: np.ndarray
+    """(N,): ln sum_j exp V_j (MNL) or ln sum_m exp(lambda_m I_m) (nested)."""
+    utilities: np.ndarray
+    """V (J, N) with -inf where unavailable."""
+    available: np.ndarray
+    """(J, N) bool."""
+    conditional: np.ndarray | None = None
+    """Nested: P(j | nest of j) (J, N)."""
+    inclusive: np.ndarray | None = None
+    """Nested: I_m = ln sum_{j in m} exp(V_j / lambda_m) (M, N), -inf for an empty nest."""
+    nest_probabilities: np.ndarray | None = None
+    """Nested: P(m) (M, N)."""
+
+
+def choice_probabilities(model: CompiledModel, v: np.ndarray, available: np.ndarray) -> ChoiceState:
+    """P and logsum from V (J, N) (overwritten) and availability (J, N).
+
+    Multinomial / binary logit (Train 2009, eq. 3.6): P_i = exp V_i / sum_j exp V_j.
+    Nested logit (Train 2009, eq. 4.2): P_i = exp(V_i/l_k) (sum_{j in k} exp(V_j/l_k))^(l_k-1)
+    / sum_m (sum_{j in m} exp(V_j/l_m))^(l_m), computed as P(k) * P(i | k) (sec. 4.2.3).
+    Raises :class:`ScoringError` if a situation has no available alternative or a
+    non-finite utility (the batch was not checked).
+    """
+    np.copyto(v, -np.inf, where=~available)
+    state = _nested(model, v, available) if model.nested else _multinomial(v, available)
+    if not np.isfinite(state.logsum).all():
+        bad = np.flatnonzero(~np.isfinite(state.logsum))[:10]
+        raise ScoringError(
+            [
+                Problem(
+                    f"situations[{int(i)}]",
+                    "no available alternative or a non-finite utility (check the batch first)",
+                )
+                for i in bad
+            ]
+        )
+    return state
+
+
+def _multinomial(v: np.ndarray, available: np.ndarray) -> ChoiceState:
+    m = v.max(axis=0)
+    shift = np.where(np.isfinite(m), m, 0.0)
+    p = v - shift
+    np.exp(p, out=p)
+    s = p.sum(axis=0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        p /= s
+        logsum = np.log(s)
+    logsum += shift
+    return ChoiceState(probabilities=p, logsum=logsum, utilities=v, available=available)
+
+
+def _nested(model: CompiledModel, v: np.ndarray, available: np.ndarray) -> ChoiceState:
+    n_m, n = len(model.nest_ids), v.shape[1]
+    lam = model.nest_scales
+    conditional = np.zeros_like(v)
+    inclusive = np.empty((n_m, n))
+    for m in range(n_m):
+        members = np.flatnonzero(model.nest_of == m)
+        u = v[members] / lam[m]
+        top = u.max(axis=0)
+        live = np.isfinite(top)
+        shift = np.where(live, top, 0.0)
+        e = np.exp(u - shift)
+        s = e.sum(axis=0)
+        safe = np.where(live, s, 1.0)
+        conditional[members] = e / safe
+        inclusive[m] = np.where(live, shift + np.log(safe), -np.inf)
+    scaled = lam[:, None] * inclusive
+    nest_p = _multinomial(scaled, np.isfinite(scaled))
+    p = nest_p.probabilities[model.nest_of] * conditional
+    return ChoiceState(
+        probabilities=p,
+        logsum=nest_p.logsum,
+        utilities=v,
+        available=available,
+        conditional=conditional,
+        inclusive=inclusive,
+        nest_probabilities=nest_p.probabilities,
+    )
+
+
+def log_probability_derivatives(model: CompiledModel, state: ChoiceState) -> np.ndarray:
+    """D[i, j] = d ln P_i / d V_j, (J, J, N); 0 where i or j is unavailable.
+
+    Logit (Train 2009, sec. 3.6): D_ij = delta_ij - P_j.  Nested logit (differentiating
+    eq. 4.2; i in nest k):  D_ij = delta_ij / l_k + [j in k] (1 - 1/l_k) P(j | k) - P_j.
+    """
+    p, avail = state.probabilities, state.available
+    n_j = p.shape[0]
+    d = np.repeat(-p[None], n_j, axis=0)
+    if model.nested:
+        assert state.conditional is not None
+        lam_alt = model.nest_scales[model.nest_of]
+        same = model.nest_of[:, None] == model.nest_of[None, :]
+        within = (1.0 - 1.0 / lam_alt)[:, None, None] * state.conditional[None]
+        d += np.where(same[:, :, None], within, 0.0)
+        d[np.arange(n_j), np.arange(n_j)] += (1.0 / lam_alt)[:, None]
+    else:
+        d[np.arange(n_j), np.arange(n_j)] += 1.0
+    d[~np.broadcast_to(avail[:, None, :], d.shape)] = 0.0
+    d[~np.broadcast_to(avail[None, :, :], d.shape)] = 0.0
+    return d

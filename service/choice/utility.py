@@ -1,0 +1,96 @@
+"""Systematic utilities and their derivatives, alternative-major: arrays are (J, N).
+
+V_j = sum_t beta_t * t(x_j) * z  (Train 2009, sec. 3.1).  Alternative-major layout keeps
+every per-alternative row contiguous, so reductions over alternatives are elementwise.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from service.choice.batch import Batch
+from service.choice.compiled import IDENTITY, LOG, NONE, CompiledModel, TermArrays
+
+
+def transform(code: int, x: np.ndarray) -> np.ndarray:
+    """t(x) for identity / log / log1p.  Outside the domain (only ever in cells of an
+    unavailable alternative, which check_batch leaves alone) the result is NaN/-inf and is
+    masked by the caller."""
+    if code == IDENTITY:
+        return x
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.log(x) if code == LOG else np.log1p(x)
+
+
+def transform_slope(code: int, x: np.ndarray) -> np.ndarray:
+    """dt/dx: identity 1, log 1/x, log1p 1/(1+x)."""
+    if code == IDENTITY:
+        return np.ones_like(x)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return 1.0 / x if code == LOG else 1.0 / (1.0 + x)
+
+
+def utilities(model: CompiledModel, batch: Batch) -> np.ndarray:
+    """V (J, N).  The dense linear block is one matrix-vector product per alternative;
+    transformed and context terms are added one term at a time over the whole batch."""
+    x, z = batch.attributes, batch.context
+    n_j = len(model.alternatives)
+    v = np.empty((n_j, batch.size))
+    for j in range(n_j):
+        np.matmul(x[:, j, :], model.linear[j], out=v[j])
+        if model.constants[j]:
+            v[j] += model.constants[j]
+    g = model.general_terms
+    for t in range(len(g)):
+        v[g.alternative[t]] += model.beta[g.coefficient[t]] * _feature(g, t, x, z)
+    return v
+
+
+def _feature(terms: TermArrays, t: int, x: np.ndarray, z: np.ndarray) -> np.ndarray | float:
+    """t(x_j[a]) * z[c] of term ``t`` over the batch (N,), or 1.0 for a bare constant."""
+    a, c = terms.attribute[t], terms.context[t]
+    f: np.ndarray | float = 1.0
+    if a != NONE:
+        f = transform(int(terms.transform[t]), x[:, terms.alternative[t], a])
+    if c != NONE:
+        f = f * z[:, c]
+    return f
+
+
+def attribute_slopes(model: CompiledModel, batch: Batch, attribute: int) -> np.ndarray:
+    """dV_j / dx_j[attribute] (J, N): sum over the alternative's terms on the attribute of
+    beta * t'(x) * z (alternative-specific coefficients and transforms honoured)."""
+    x, z = batch.attributes, batch.context
+    terms = model.terms
+    out = np.zeros((len(model.alternatives), batch.size))
+    for t in np.flatnonzero(terms.attribute == attribute):
+        j = terms.alternative[t]
+        s = model.beta[terms.coefficient[t]] * transform_slope(
+            int(terms.transform[t]), x[:, j, attribute]
+        )
+        if terms.context[t] != NONE:
+            s = s * z[:, terms.context[t]]
+        out[j] += s
+    return out
+
+
+def context_slopes(model: CompiledModel, batch: Batch, variable: int) -> np.ndarray:
+    """dV_j / dz[variable] (J, N): sum over terms interacting with it of beta * t(x)."""
+    x = batch.attributes
+    terms = model.terms
+    out = np.zeros((len(model.alternatives), batch.size))
+    for t in np.flatnonzero(terms.context == variable):
+        j, a = terms.alternative[t], terms.attribute[t]
+        f = 1.0 if a == NONE else transform(int(terms.transform[t]), x[:, j, a])
+        out[j] += model.beta[terms.coefficient[t]] * f
+    return out
+
+
+def utility_design(model: CompiledModel, batch: Batch) -> np.ndarray:
+    """dV_j / dbeta_k (K, J, N): the term features t(x) * z (V is linear in beta)."""
+    x, z = batch.attributes, batch.context
+    terms = model.terms
+    out = np.zeros((len(model.beta), len(model.alternatives), batch.size))
+    for t in range(len(terms)):
+        out[terms.coefficient[t], terms.alternative[t]] += _feature(terms, t, x, z)
+    return out

@@ -1,0 +1,155 @@
+"""Boundary checks of batches: every finding names its situation and field."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from service.choice import Batch, BatchProblem, ScoringError, check_batch, score
+from tests.core.conftest import commute_batch, commute_model, commute_spec, model_from
+
+
+def record(**overrides):
+    rec = {
+        "attributes": {
+            "car": {"fare": 4.0, "time": 25.0},
+            "bus": {"fare": 2.0, "time": 40.0, "wait": 6.0},
+            "rail": {"fare": 3.0, "time": 30.0, "wait": 4.0},
+            "bike": {"time": 45.0},
+        },
+        "context": {"income": 45.0},
+    }
+    rec.update(overrides)
+    return rec
+
+
+def fields(problems):
+    return {(p.situation, p.field) for p in problems}
+
+
+def test_records_fill_arrays_in_the_models_axis_order(mnl):
+    batch, problems = Batch.from_records(mnl, [record(), record(weight=2.5)])
+    assert problems == ()
+    assert batch.attributes.shape == (2, 4, 3) and batch.context.shape == (2, 1)
+    assert batch.attributes[0, 1, 2] == 6.0  # bus wait
+    assert batch.attributes[0, 3, 0] == 0.0  # bike has no fare term: unused cell is 0
+    np.testing.assert_array_equal(batch.weights, [1.0, 2.5])
+    assert batch.available.all()
+    assert check_batch(mnl, batch).ok
+
+
+def test_model_lists_the_cells_and_context_it_uses(mnl):
+    assert ("bus", "wait") in mnl.required_attributes
+    assert ("bike", "fare") not in mnl.required_attributes
+    assert mnl.required_context == ("income",)
+
+
+def test_records_report_unknown_names_and_wrong_types_by_field(mnl):
+    rec = record(color="red", available={"car": True, "tram": False, "bus": "yes"})
+    rec["attributes"]["tram"] = {"fare": 1.0}
+    rec["attributes"]["car"]["comfort"] = 3
+    rec["attributes"]["rail"]["fare"] = "cheap"
+    rec["context"]["age"] = 40
+    batch, problems = Batch.from_records(mnl, [record(), rec, 7])
+    assert fields(problems) == {
+        (1, ("color",)),
+        (1, ("attributes", "tram")),
+        (1, ("attributes", "car", "comfort")),
+        (1, ("attributes", "rail", "fare")),
+        (1, ("context", "age")),
+        (1, ("available", "tram")),
+        (1, ("available", "bus")),
+        (2, ()),
+    }
+    # The wrongly typed rail fare is left missing, so the check names it too.
+    assert (1, ("attributes", "rail", "fare")) in fields(check_batch(mnl, batch).problems)
+
+
+def test_missing_used_values_are_problems_naming_the_field(mnl):
+    rec = record()
+    del rec["attributes"]["bus"]["wait"]
+    del rec["context"]["income"]
+    batch, problems = Batch.from_records(mnl, [record(), rec])
+    assert problems == ()
+    check = check_batch(mnl, batch)
+    assert fields(check.problems) == {
+        (1, ("attributes", "bus", "wait")),
+        (1, ("context", "income")),
+    }
+    assert all("finite" in p.message for p in check.problems)
+
+
+def test_missing_values_of_an_unavailable_alternative_are_fine(mnl):
+    rec = record(available={"bus": False})
+    del rec["attributes"]["bus"]
+    batch, _ = Batch.from_records(mnl, [rec])
+    assert check_batch(mnl, batch).ok
+    assert score(mnl, batch).probabilities[0, 1] == 0.0
+
+
+def test_log_and_log1p_domains_are_checked(mnl):
+    a = record()
+    a["attributes"]["car"]["time"] = 0.0  # log(time)
+    b = record()
+    b["attributes"]["bus"]["wait"] = -1.0  # log1p(wait)
+    c = record()
+    c["attributes"]["rail"]["wait"] = -1.0  # identity: fine
+    batch, _ = Batch.from_records(mnl, [a, b, c])
+    check = check_batch(mnl, batch)
+    assert fields(check.problems) == {
+        (0, ("attributes", "car", "time")),
+        (1, ("attributes", "bus", "wait")),
+    }
+    assert "log" in check.problems[0].message and "log1p" in check.problems[1].message
+
+
+def test_a_situation_with_no_available_alternative_is_named(mnl):
+    rec = record(available=dict.fromkeys(("car", "bus", "rail", "bike"), False))
+    batch, _ = Batch.from_records(mnl, [record(), rec])
+    assert fields(check_batch(mnl, batch).problems) == {(1, ("available",))}
+    with pytest.raises(ScoringError) as err:
+        score(mnl, batch)  # scoring an unchecked bad batch refuses; it never returns NaN
+    assert err.value.problems[0].path == "situations[1]"
+
+
+def test_weights_must_be_finite_non_negative_with_positive_sum(mnl):
+    batch, _ = Batch.from_records(mnl, [record(weight=-1), record(weight=float("nan"))])
+    assert fields(check_batch(mnl, batch).problems) == {(0, ("weight",)), (1, ("weight",))}
+    batch, _ = Batch.from_records(mnl, [record(weight=0), record(weight=0.0)])
+    assert check_batch(mnl, batch).problems == (
+        BatchProblem(-1, ("weight",), "weights must have a positive sum"),
+    )
+
+
+def test_wrong_shapes_are_reported_not_raised(mnl):
+    good = commute_batch(mnl, 3)
+    bad = Batch(good.attributes[:, :2], good.context, good.available, good.weights.astype(int))
+    assert {p.field for p in check_batch(mnl, bad).problems} == {("attributes",), ("weights",)}
+
+
+def test_problem_lists_are_capped_and_counted(mnl):
+    batch = commute_batch(mnl, 1000)
+    batch.context[:] = np.nan
+    check = check_batch(mnl, batch)
+    assert len(check.problems) == 100 and check.problem_count == 1000
+    assert check.omitted_problems == 900
+    assert [p.situation for p in check.problems] == list(range(100))
+
+
+@pytest.mark.parametrize("policy", ["warn", "reject", "clip"])
+def test_range_policy(policy):
+    spec = dict(commute_spec(), range_policy=policy)
+    model = model_from(spec, commute_model().coefficients.as_mapping())
+    hi = record()
+    hi["attributes"]["bus"]["fare"] = 45.0  # estimation range [0, 30]
+    batch, _ = Batch.from_records(model, [record(), hi])
+    check = check_batch(model, batch)
+    found = fields(check.warnings if policy != "reject" else check.problems)
+    assert found == {(1, ("attributes", "bus", "fare"))}
+    if policy == "clip":
+        assert check.batch is not batch and check.batch.attributes[1, 1, 0] == 30.0
+        assert batch.attributes[1, 1, 0] == 45.0  # the input is never modified
+    else:
+        assert check.batch is batch
+    if policy == "warn":
+        assert check.ok and "outside" in check.warnings[0].message
