@@ -27,7 +27,7 @@ from containerfile import (
 
 VENV_BIN = Path(sys.executable).parent
 HADOLINT = shutil.which("hadolint", path=str(VENV_BIN)) or shutil.which("hadolint")
-SERVE_COMMAND = ["choicecast", "serve", "--host", "0.0.0.0", "--port", "8080"]
+SERVE_COMMAND = ["choicecast", "serve", "--host", "0.0.0.0", "--port", "8080", "--workers", "2"]
 
 
 def _hadolint(path: Path) -> list[dict]:
@@ -141,7 +141,7 @@ def test_the_serve_command_accepts_the_image_arguments() -> None:
         env={**os.environ, "PYTHONDONTWRITEBYTECODE": "1"},
     )
     assert done.returncode == 0, done.stderr
-    for option in ("--host", "--port", "--store"):
+    for option in ("--host", "--port", "--workers", "--store"):
         assert option in done.stdout
 
 

@@ -25,8 +25,16 @@ from manifests import KUSTOMIZATION, by_kind, documents, manifest_files, one
 KUBERNETES_VERSIONS = ("1.31.0", "1.37.0")
 # Variables the service reads that hold secrets: never in the ConfigMap, always from a Secret.
 SECRET_VARIABLES = {"CHOICECAST_SCORE_TOKENS", "CHOICECAST_ADMIN_TOKENS"}
-# Set in the Deployment beside the volume it points into, not in the ConfigMap.
-DEPLOYMENT_VARIABLES = {"CHOICECAST_TOKENS_FILE"}
+# Set elsewhere than the ConfigMap: the tokens file beside the volume it points into (the
+# Deployment), the bind and worker count by the container arguments, the gunicorn config
+# path by the image.
+DEPLOYMENT_VARIABLES = {
+    "CHOICECAST_TOKENS_FILE",
+    "CHOICECAST_HOST",
+    "CHOICECAST_PORT",
+    "CHOICECAST_WORKERS",
+    "CHOICECAST_GUNICORN_CONFIG",
+}
 # Standard AWS SDK variables (boto3 documentation) the S3 backend honours.
 AWS_VARIABLES = {"AWS_DEFAULT_REGION", "AWS_REGION", "AWS_ACCESS_KEY_ID", "AWS_SECRET_ACCESS_KEY"}
 AWS_SECRET_VARIABLES = {"AWS_ACCESS_KEY_ID", "AWS_SECRET_ACCESS_KEY", "AWS_SESSION_TOKEN"}
@@ -247,6 +255,16 @@ def test_tokens_and_store_credentials_come_from_secrets() -> None:
     for entry in env.values():
         if entry["name"] in AWS_SECRET_VARIABLES:
             assert "value" not in entry
+
+
+def test_every_variable_is_in_the_configuration_reference() -> None:
+    reference = (REPO / "docs" / "production.md").read_text()
+    section = reference.split("## Configuration reference", 1)[1].split("\n## ", 1)[0]
+    documented = set(re.findall(r"`([A-Z][A-Z0-9_]+)`", section))
+    missing = (service_variables() | AWS_VARIABLES) - documented
+    assert not missing, f"not in docs/production.md: {sorted(missing)}"
+    for key in one("ConfigMap")["data"]:
+        assert key in documented, key
 
 
 def test_no_secret_values_in_the_repository_deploy_files() -> None:
