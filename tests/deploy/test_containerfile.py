@@ -16,7 +16,7 @@ import tomllib
 from pathlib import Path
 
 import pytest
-from containerfile import (
+from containerfile_reader import (
     CONTAINERFILE,
     REPO,
     copy_sources,

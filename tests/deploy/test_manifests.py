@@ -18,8 +18,8 @@ from pathlib import Path
 import kubernetes_validate
 import pytest
 import yaml
-from containerfile import CONTAINERFILE, REPO, exec_form, instructions
-from manifests import KUSTOMIZATION, by_kind, documents, manifest_files, one
+from containerfile_reader import CONTAINERFILE, REPO, exec_form, instructions
+from k8s_manifests import KUSTOMIZATION, by_kind, documents, manifest_files, one
 
 # Oldest Kubernetes release the manifests target, and the newest whose schemas are bundled.
 KUBERNETES_VERSIONS = ("1.31.0", "1.37.0")
