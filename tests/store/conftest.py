@@ -57,6 +57,14 @@ def store(request: pytest.FixtureRequest, tmp_path) -> Store:
     return open_store(f"s3://{BUCKET}/{uuid.uuid4().hex}", endpoint_url=endpoint)
 
 
+def reopen(store: Store) -> Store:
+    """The same store opened afresh from its URI (as another process would)."""
+    backend = store.backend
+    if hasattr(backend, "root"):
+        return open_store(str(backend.root))
+    return open_store(f"s3://{backend.bucket}/{backend.prefix}", endpoint_url=backend.endpoint_url)
+
+
 def raw_get(store: Store, key: str) -> bytes:
     """Read a key directly (not through the backend's own code path)."""
     backend = store.backend
