@@ -1,0 +1,92 @@
+"""Request ids, one JSON access-log line per request, and the request metrics.
+
+``X-Request-ID`` is honoured when it is 1-128 characters of ``[A-Za-z0-9._:-]``; otherwise a
+new id is generated.  The id is echoed in the response header and every problem document.
+Log lines never contain tokens or request bodies.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import re
+import sys
+import time
+import uuid
+
+from flask import Flask, Response, g, request
+
+from . import metrics
+
+REQUEST_ID = re.compile(r"^[A-Za-z0-9._:-]{1,128}$")
+access = logging.getLogger("choicecast.access")
+
+
+class JsonFormatter(logging.Formatter):
+    """Access records are already dicts; other records become {ts, level, logger, message}."""
+
+    def format(self, record: logging.LogRecord) -> str:
+        if isinstance(record.msg, dict):
+            return json.dumps(record.msg, separators=(",", ":"), default=str)
+        entry = {
+            "ts": round(record.created, 3),
+            "level": record.levelname,
+            "logger": record.name,
+            "message": record.getMessage(),
+        }
+        if record.exc_info:
+            entry["exception"] = self.formatException(record.exc_info)
+        return json.dumps(entry, separators=(",", ":"))
+
+
+def configure_logging(level: str) -> None:
+    root = logging.getLogger("choicecast")
+    if not any(getattr(h, "_choicecast", False) for h in root.handlers):
+        handler = logging.StreamHandler(sys.stdout)
+        handler.setFormatter(JsonFormatter())
+        handler._choicecast = True  # type: ignore[attr-defined]
+        root.addHandler(handler)
+        root.propagate = False
+    root.setLevel(level.upper())
+
+
+def install(app: Flask, log_requests: bool) -> None:
+    @app.before_request
+    def _start() -> None:
+        g.started = time.perf_counter()
+        offered = request.headers.get("X-Request-ID", "")
+        g.request_id = offered if REQUEST_ID.match(offered) else uuid.uuid4().hex
+
+    @app.after_request
+    def _finish(response: Response) -> Response:
+        started = g.get("started", time.perf_counter())
+        elapsed = time.perf_counter() - started
+        request_id = g.get("request_id") or uuid.uuid4().hex
+        response.headers["X-Request-ID"] = request_id
+        route = request.url_rule.rule if request.url_rule is not None else "unmatched"
+        model = g.get("model", "")
+        version = g.get("version", "")
+        status = response.status_code
+        metrics.REQUESTS.labels(model, version, route, str(status)).inc()
+        metrics.LATENCY.labels(route).observe(elapsed)
+        if status in (400, 413, 415, 422):
+            metrics.VALIDATION_FAILURES.labels(model, str(status)).inc()
+        if log_requests:
+            entry = {
+                "ts": round(time.time(), 3),
+                "type": "access",
+                "request_id": request_id,
+                "method": request.method,
+                "path": request.path,
+                "route": route,
+                "status": status,
+                "duration_ms": round(elapsed * 1000, 3),
+                "bytes_in": request.content_length or 0,
+                "bytes_out": response.calculate_content_length() or 0,
+                "remote": request.remote_addr,
+            }
+            for key in ("model", "version", "decision", "generation", "situations", "problem"):
+                if g.get(key) is not None:
+                    entry[key] = g.get(key)
+            access.info(entry)
+        return response

@@ -1,0 +1,1 @@
+"""Request decoders (rows JSON, columnar JSON, Arrow IPC) and response encoders."""

@@ -1,0 +1,82 @@
+"""The columnar JSON form: one list per attribute, one value per situation.
+
+``{"columns": {"id": [...], "attributes": {alt: {attr: [...]}}, "context": {name: [...]},
+"available": {alt: [...]}, "weight": [...]}}``.  Columns arrive as NumPy arrays (the schema
+converts each list in one step); filling the batch is a copy per column, no per-value loop.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from service.choice import Batch
+
+from ..problems import FieldError
+from .decoded import Decoded, columns_locator
+
+ROOT = "$.columns"
+
+
+def column_length(columns: dict[str, Any]) -> int:
+    """The number of situations (the longest column; mismatches are reported on decode)."""
+    lengths = [len(columns.get("id", ()))]
+    lengths += [len(c) for alt in columns.get("attributes", {}).values() for c in alt.values()]
+    lengths += [len(c) for c in columns.get("context", {}).values()]
+    lengths += [len(c) for c in columns.get("available", {}).values()]
+    if "weight" in columns:
+        lengths.append(len(columns["weight"]))
+    return max(lengths)
+
+
+def decode_columns(model: Any, columns: dict[str, Any]) -> Decoded:
+    n = column_length(columns)
+    j_of = {a: i for i, a in enumerate(model.alternatives)}
+    a_of = {a: i for i, a in enumerate(model.attributes)}
+    c_of = {c: i for i, c in enumerate(model.context)}
+    x = np.where(model.required, np.nan, 0.0)[None].repeat(n, axis=0)
+    z = np.where(model.required_context_mask, np.nan, 0.0)[None].repeat(n, axis=0)
+    available = np.ones((n, len(model.alternatives)), dtype=bool)
+    weights = np.ones(n)
+    errors: list[FieldError] = []
+
+    def fits(path: str, column: Any) -> bool:
+        if len(column) != n:
+            errors.append(FieldError(path, f"has {len(column)} values; other columns have {n}"))
+            return False
+        return True
+
+    for alt, attrs in columns.get("attributes", {}).items():
+        if alt not in j_of:
+            errors.append(FieldError(f"{ROOT}.attributes.{alt}", "not an alternative of the model"))
+            continue
+        for attr, column in attrs.items():
+            path = f"{ROOT}.attributes.{alt}.{attr}"
+            if attr not in a_of:
+                errors.append(FieldError(path, "not an attribute of the model"))
+            elif fits(path, column):
+                x[:, j_of[alt], a_of[attr]] = column
+    for name, column in columns.get("context", {}).items():
+        path = f"{ROOT}.context.{name}"
+        if name not in c_of:
+            errors.append(FieldError(path, "not a context variable of the model"))
+        elif fits(path, column):
+            z[:, c_of[name]] = column
+    for alt, column in columns.get("available", {}).items():
+        path = f"{ROOT}.available.{alt}"
+        if alt not in j_of:
+            errors.append(FieldError(path, "not an alternative of the model"))
+        elif fits(path, column):
+            available[:, j_of[alt]] = column
+    if "weight" in columns and fits(f"{ROOT}.weight", columns["weight"]):
+        weights = columns["weight"]
+    if "id" in columns:
+        ids = columns["id"]
+        fits(f"{ROOT}.id", ids)
+    else:
+        ids = [str(i) for i in range(n)]
+    batch = Batch(attributes=x, context=z, available=available, weights=weights)
+    return Decoded(
+        ids=ids, batch=batch, problems=tuple(errors), locate=columns_locator(ROOT), form="columns"
+    )

@@ -1,0 +1,48 @@
+"""What every request decoder returns: situation ids, the batch, and located problems."""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+from service.choice import Batch, BatchProblem
+
+from ..problems import FieldError
+
+Locate = Callable[[BatchProblem], str]
+
+
+@dataclass(frozen=True, eq=False)
+class Decoded:
+    ids: Sequence[str]
+    batch: Batch
+    problems: tuple[FieldError, ...]
+    """Problems found while decoding (unknown names, wrong types), already located."""
+    locate: Locate
+    """Turns a core ``BatchProblem`` into the path of its field in this request form."""
+    form: str
+    """``rows``, ``columns`` or ``arrow``."""
+
+    def errors(self, problems: Sequence[BatchProblem]) -> list[FieldError]:
+        return [FieldError(self.locate(p), p.message) for p in problems]
+
+
+def rows_locator(root: str) -> Locate:
+    """``$.situations[3].attributes.bus.fare`` (``root`` is ``$.situations``)."""
+
+    def locate(p: BatchProblem) -> str:
+        base = root if p.situation < 0 else f"{root}[{p.situation}]"
+        return base + "".join(f".{f}" for f in p.field)
+
+    return locate
+
+
+def columns_locator(root: str) -> Locate:
+    """``$.columns.attributes.bus.fare[3]`` (``root`` is ``$.columns``)."""
+
+    def locate(p: BatchProblem) -> str:
+        field = list(p.field) or ["situations"]
+        path = root + "".join(f".{f}" for f in field)
+        return path if p.situation < 0 else f"{path}[{p.situation}]"
+
+    return locate

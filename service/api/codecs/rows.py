@@ -1,0 +1,27 @@
+"""The per-situation JSON form: ``{"situations": [{"id", "attributes", "context", ...}]}``."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import Any
+
+from service.choice import Batch
+
+from .decoded import Decoded, rows_locator
+
+ROOT = "$.situations"
+
+
+def decode_rows(model: Any, situations: Sequence[dict[str, Any]]) -> Decoded:
+    """Situations (already shape-checked by the envelope schema) into a batch.
+
+    Unknown alternatives/attributes and values of the wrong type come back as problems; missing
+    or non-finite values the model uses are left NaN for ``check_batch`` to report.
+    """
+    ids = [str(s.get("id", i)) if isinstance(s, dict) else str(i) for i, s in enumerate(situations)]
+    batch, problems = Batch.from_records(model, situations)
+    locate = rows_locator(ROOT)
+    from ..problems import FieldError
+
+    errors = tuple(FieldError(locate(p), p.message) for p in problems)
+    return Decoded(ids=ids, batch=batch, problems=errors, locate=locate, form="rows")

@@ -1,0 +1,404 @@
+"""marshmallow schemas of every request and response (the OpenAPI document is built from them).
+
+Request schemas validate shapes and types; whether values can be scored (attributes a model
+uses, finite values, domains, ranges) is checked on arrays by the core (``check_batch``).
+Bulk columns (columnar form) are converted to NumPy arrays in one step per column, so a large
+batch never pays a per-value schema cost.  Response schemas document what the views build;
+the tests load real responses through them.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+from marshmallow import RAISE, Schema, ValidationError, fields, validate, validates_schema
+
+NAME = validate.Regexp(r"^[A-Za-z_][A-Za-z0-9_.-]{0,63}$", error="not a valid name")
+KEY = validate.Length(min=1, max=256)
+
+
+class Number(fields.Float):
+    """A JSON number (not a string or boolean); NaN/Infinity parse and are refused at 422."""
+
+    def __init__(self, **kwargs: Any):
+        super().__init__(allow_nan=True, **kwargs)
+
+    def _deserialize(self, value: Any, attr: Any, data: Any, **kwargs: Any) -> float:
+        if isinstance(value, bool) or not isinstance(value, int | float):
+            raise ValidationError("must be a number")
+        return float(value)
+
+
+class StrictBool(fields.Boolean):
+    def _deserialize(self, value: Any, attr: Any, data: Any, **kwargs: Any) -> bool:
+        if not isinstance(value, bool):
+            raise ValidationError("must be true or false")
+        return value
+
+
+class NumberColumn(fields.Field):
+    """A list of JSON numbers, loaded as one float64 array (vectorised type check)."""
+
+    def __init__(self, **kwargs: Any):
+        kwargs.setdefault("metadata", {}).update(type="array", items={"type": "number"})
+        super().__init__(**kwargs)
+
+    def _deserialize(self, value: Any, attr: Any, data: Any, **kwargs: Any) -> np.ndarray:
+        if not isinstance(value, list):
+            raise ValidationError("must be a list of numbers")
+        arr = np.asarray(value) if value else np.zeros(0)
+        if arr.ndim != 1 or arr.dtype.kind not in "iuf":
+            raise ValidationError("must be a list of numbers (no strings, booleans or nulls)")
+        return arr.astype(np.float64, copy=False)
+
+
+class BoolColumn(fields.Field):
+    def __init__(self, **kwargs: Any):
+        kwargs.setdefault("metadata", {}).update(type="array", items={"type": "boolean"})
+        super().__init__(**kwargs)
+
+    def _deserialize(self, value: Any, attr: Any, data: Any, **kwargs: Any) -> np.ndarray:
+        if not isinstance(value, list):
+            raise ValidationError("must be a list of true/false")
+        arr = np.asarray(value) if value else np.zeros(0, dtype=bool)
+        if arr.ndim != 1 or arr.dtype.kind != "b":
+            raise ValidationError("must be a list of true/false")
+        return arr
+
+
+class IdColumn(fields.Field):
+    def __init__(self, **kwargs: Any):
+        kwargs.setdefault("metadata", {}).update(type="array", items={"type": "string"})
+        super().__init__(**kwargs)
+
+    def _deserialize(self, value: Any, attr: Any, data: Any, **kwargs: Any) -> list[str]:
+        if not isinstance(value, list) or not all(
+            isinstance(v, str) and 0 < len(v) <= 256 for v in value
+        ):
+            raise ValidationError("must be a list of strings of 1-256 characters")
+        if len(set(value)) != len(value):
+            raise ValidationError("situation ids must be unique")
+        return value
+
+
+class Strict(Schema):
+    class Meta:
+        unknown = RAISE
+
+
+# -- requests ---------------------------------------------------------------------------
+
+
+class OutputsSchema(Strict):
+    """What to return; probabilities by default."""
+
+    probabilities = StrictBool(load_default=True)
+    logsum = StrictBool(load_default=False, metadata={"description": "ln sum_j exp V_j"})
+    expected_max_utility = StrictBool(
+        load_default=False, metadata={"description": "logsum + Euler's constant"}
+    )
+    surplus = StrictBool(
+        load_default=False,
+        metadata={"description": "consumer surplus logsum / alpha, alpha = -dV/d(cost)"},
+    )
+    elasticities = fields.List(
+        fields.String(validate=NAME),
+        load_default=list,
+        metadata={"description": "attributes or context variables to differentiate by"},
+    )
+    aggregate = StrictBool(
+        load_default=False, metadata={"description": "weighted shares and elasticities"}
+    )
+    std_errors = StrictBool(
+        load_default=False,
+        metadata={"description": "delta-method standard errors of the probabilities"},
+    )
+
+
+class SituationSchema(Strict):
+    id = fields.String(validate=KEY, metadata={"description": "defaults to the index"})
+    attributes = fields.Dict(
+        keys=fields.String(),
+        values=fields.Dict(keys=fields.String(), values=Number()),
+        load_default=dict,
+        metadata={"description": "attribute values by alternative id, then attribute name"},
+    )
+    context = fields.Dict(keys=fields.String(), values=Number(), load_default=dict)
+    available = fields.Dict(
+        keys=fields.String(),
+        values=StrictBool(),
+        load_default=dict,
+        metadata={"description": "alternatives default to available"},
+    )
+    weight = Number(load_default=1.0)
+
+
+class ColumnsSchema(Strict):
+    """One value per situation in every column."""
+
+    id = IdColumn(metadata={"description": "situation ids; default the index"})
+    attributes = fields.Dict(
+        keys=fields.String(),
+        values=fields.Dict(keys=fields.String(), values=NumberColumn()),
+        load_default=dict,
+    )
+    context = fields.Dict(keys=fields.String(), values=NumberColumn(), load_default=dict)
+    available = fields.Dict(keys=fields.String(), values=BoolColumn(), load_default=dict)
+    weight = NumberColumn()
+
+
+class SituationList(fields.List):
+    """Situations: documented by :class:`SituationSchema`, checked here only as a list of
+    objects with string ids. Their values are checked on arrays by the core
+    (``Batch.from_records`` then ``check_batch``), which names each offending field, so a
+    large request never pays marshmallow's per-value cost."""
+
+    def __init__(self, **kwargs: Any):
+        super().__init__(fields.Nested(SituationSchema), **kwargs)
+
+    def _deserialize(self, value: Any, attr: Any, data: Any, **kwargs: Any) -> list[dict]:
+        if not isinstance(value, list):
+            raise ValidationError("must be a list of situations")
+        errors: dict[int, Any] = {}
+        seen: set[str] = set()
+        for i, item in enumerate(value):
+            if not isinstance(item, dict):
+                errors[i] = ["must be an object"]
+                continue
+            sid = item.get("id", None)
+            if sid is None:
+                continue
+            if not isinstance(sid, str) or not 0 < len(sid) <= 256:
+                errors[i] = {"id": ["must be a string of 1-256 characters"]}
+            elif sid in seen:
+                errors[i] = {"id": [f"duplicate situation id {sid!r}"]}
+            else:
+                seen.add(sid)
+            if len(errors) >= 100:
+                break
+        if errors:
+            raise ValidationError(errors)
+        return value
+
+
+class ScoreRequestSchema(Strict):
+    routing_key = fields.String(
+        validate=KEY, metadata={"description": "the same key meets the same version"}
+    )
+    outputs = fields.Nested(OutputsSchema, data_key="return")
+    situations = SituationList()
+    columns = fields.Nested(ColumnsSchema)
+
+    @validates_schema
+    def _one_form(self, data: dict[str, Any], **kwargs: Any) -> None:
+        if ("situations" in data) == ("columns" in data):
+            raise ValidationError("give exactly one of situations (rows) or columns")
+
+
+class ArrowQuerySchema(Strict):
+    """Options of an Arrow request, as query parameters (comma-separated lists)."""
+
+    routing_key = fields.String(validate=KEY)
+    probabilities = StrictBool(load_default=True)
+    logsum = StrictBool(load_default=False)
+    expected_max_utility = StrictBool(load_default=False)
+    surplus = StrictBool(load_default=False)
+    elasticities = fields.String(load_default="")
+    aggregate = StrictBool(load_default=False)
+    std_errors = StrictBool(load_default=False)
+
+
+class ChangeSchema(Strict):
+    alternative = fields.String(required=True)
+    attribute = fields.String(required=True)
+    op = fields.String(required=True, validate=validate.OneOf(("set", "add", "multiply")))
+    value = Number(required=True)
+
+
+class VariantSchema(Strict):
+    name = fields.String(required=True, validate=KEY)
+    changes = fields.List(fields.Nested(ChangeSchema), load_default=list)
+    remove = fields.List(
+        fields.String(), load_default=list, metadata={"description": "alternatives removed"}
+    )
+    add = fields.List(
+        fields.String(),
+        load_default=list,
+        metadata={"description": "alternatives made available (give their attributes)"},
+    )
+
+
+class ScenarioRequestSchema(Strict):
+    routing_key = fields.String(validate=KEY)
+    version = fields.String(
+        validate=KEY, metadata={"description": "pin a version (bypasses routing)"}
+    )
+    situations = SituationList()
+    columns = fields.Nested(ColumnsSchema)
+    variants = fields.List(
+        fields.Nested(VariantSchema), required=True, validate=validate.Length(min=1, max=64)
+    )
+
+    @validates_schema
+    def _one_form(self, data: dict[str, Any], **kwargs: Any) -> None:
+        if ("situations" in data) == ("columns" in data):
+            raise ValidationError("give exactly one of situations (rows) or columns")
+
+
+class RoutingChangeSchema(Strict):
+    live = fields.Dict(
+        keys=fields.String(validate=KEY),
+        values=Number(validate=validate.Range(min=0, max=1e6)),
+        required=True,
+        metadata={"description": "weights by version (normalised)"},
+    )
+    shadow = fields.String(allow_none=True, load_default=None)
+    expected_generation = fields.Integer(
+        strict=True, metadata={"description": "refuse the change (409) if routing moved on"}
+    )
+    reason = fields.String(
+        required=True, validate=validate.Length(min=1, max=1000), metadata={"description": "why"}
+    )
+
+
+class PromoteSchema(Strict):
+    version = fields.String(required=True, validate=KEY)
+    expected_generation = fields.Integer(strict=True)
+    reason = fields.String(validate=validate.Length(max=1000))
+
+
+class RollbackSchema(Strict):
+    expected_generation = fields.Integer(strict=True)
+    reason = fields.String(validate=validate.Length(max=1000))
+
+
+# -- responses --------------------------------------------------------------------------
+
+
+class FiniteNumber(fields.Float):
+    def _deserialize(self, value: Any, attr: Any, data: Any, **kwargs: Any) -> float:
+        out = super()._deserialize(value, attr, data, **kwargs)
+        if not math.isfinite(out):
+            raise ValidationError("must be finite")
+        return out
+
+
+class RoutingInfoSchema(Schema):
+    decision = fields.String(validate=validate.OneOf(("pinned", "key-sticky", "random")))
+    generation = fields.Integer(allow_none=True)
+
+
+class FieldErrorSchema(Schema):
+    path = fields.String(required=True)
+    message = fields.String(required=True)
+
+
+Matrix = fields.Dict(
+    keys=fields.String(), values=fields.Dict(keys=fields.String(), values=FiniteNumber())
+)
+
+
+class SituationResultSchema(Schema):
+    id = fields.String(required=True)
+    probabilities = fields.Dict(keys=fields.String(), values=FiniteNumber())
+    probability_std_errors = fields.Dict(keys=fields.String(), values=FiniteNumber())
+    logsum = FiniteNumber()
+    expected_max_utility = FiniteNumber()
+    surplus = FiniteNumber()
+    elasticities = fields.Dict(
+        keys=fields.String(),
+        values=fields.Dict(keys=fields.String(), values=fields.Raw()),
+        metadata={
+            "description": "by variable, then alternative i, then alternative k (or a number for a context variable)"
+        },
+    )
+    warnings = fields.List(fields.Nested(FieldErrorSchema))
+
+
+class AggregateSchema(Schema):
+    shares = fields.Dict(keys=fields.String(), values=FiniteNumber())
+    elasticities = fields.Dict(keys=fields.String(), values=fields.Raw())
+
+
+class ScoreResponseSchema(Schema):
+    model = fields.String(required=True)
+    version = fields.String(required=True)
+    routing = fields.Nested(RoutingInfoSchema, required=True)
+    alternatives = fields.List(fields.String(), required=True)
+    situations = fields.List(fields.Nested(SituationResultSchema))
+    columns = fields.Dict(
+        keys=fields.String(), values=fields.Raw(), metadata={"description": "columnar results"}
+    )
+    aggregate = fields.Nested(AggregateSchema)
+    warnings = fields.List(fields.Nested(FieldErrorSchema))
+
+
+class VariantResultSchema(Schema):
+    name = fields.String(required=True)
+    shares = fields.Dict(keys=fields.String(), values=FiniteNumber())
+    share_deltas = fields.Dict(keys=fields.String(), values=FiniteNumber())
+    surplus_change = FiniteNumber(allow_none=True)
+    revenue = FiniteNumber(allow_none=True)
+    revenue_change = FiniteNumber(allow_none=True)
+
+
+class ScenarioResponseSchema(Schema):
+    model = fields.String(required=True)
+    version = fields.String(required=True)
+    routing = fields.Nested(RoutingInfoSchema, required=True)
+    alternatives = fields.List(fields.String(), required=True)
+    base = fields.Nested(VariantResultSchema, required=True)
+    variants = fields.List(fields.Nested(VariantResultSchema), required=True)
+    warnings = fields.List(fields.Nested(FieldErrorSchema))
+
+
+class ProblemSchema(Schema):
+    type = fields.String(required=True)
+    title = fields.String(required=True)
+    status = fields.Integer(required=True)
+    detail = fields.String(required=True)
+    instance = fields.String(allow_none=True)
+    errors = fields.List(fields.Nested(FieldErrorSchema))
+    request_id = fields.String(allow_none=True)
+
+
+class RoutingStateSchema(Schema):
+    generation = fields.Integer(required=True)
+    live = fields.Dict(keys=fields.String(), values=FiniteNumber(), required=True)
+    shadow = fields.String(allow_none=True)
+
+
+class ModelSummarySchema(Schema):
+    name = fields.String(required=True)
+    versions = fields.List(fields.String(), required=True)
+    routing = fields.Nested(RoutingStateSchema, allow_none=True)
+    family = fields.String(allow_none=True)
+    alternatives = fields.List(fields.String())
+    attributes = fields.List(fields.Dict())
+    context = fields.List(fields.Dict())
+    cost_attribute = fields.String(allow_none=True)
+
+
+class ModelListSchema(Schema):
+    models = fields.List(fields.Nested(ModelSummarySchema), required=True)
+
+
+class VersionDetailSchema(Schema):
+    model = fields.String(required=True)
+    version = fields.String(required=True)
+    spec = fields.Dict(required=True)
+    coefficients = fields.List(fields.Dict(), required=True)
+    manifest = fields.Dict(allow_none=True)
+
+
+class HealthSchema(Schema):
+    status = fields.String(required=True)
+    reasons = fields.List(fields.String())
+    models = fields.Dict(keys=fields.String(), values=fields.Raw())
+
+
+class RoutingHistorySchema(Schema):
+    model = fields.String(required=True)
+    entries = fields.List(fields.Dict(), required=True)

@@ -1,0 +1,208 @@
+"""The steps of a scoring request between the view and the core: parse the body by media type,
+decode it against a model, check and score it, and score the shadow version afterwards."""
+
+from __future__ import annotations
+
+import json
+import logging
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from flask import request
+from marshmallow import ValidationError
+
+from service.choice import BatchCheck, ScoreOptions, ScoreResult, ScoringError, check_batch, score
+
+from . import metrics
+from .codecs.arrow import MEDIA_TYPE as ARROW
+from .codecs.columns import column_length, decode_columns
+from .codecs.decoded import Decoded
+from .codecs.results import Outputs, require_finite
+from .codecs.rows import decode_rows
+from .context import registry, settings
+from .problems import (
+    FieldError,
+    bad_request,
+    marshmallow_errors,
+    too_large,
+    unprocessable,
+    unsupported_media_type,
+)
+from .schemas import ArrowQuerySchema, OutputsSchema, ScoreRequestSchema
+
+log = logging.getLogger("choicecast.scoring")
+
+JSON = "application/json"
+
+
+@dataclass(frozen=True, eq=False)
+class ParsedRequest:
+    form: str
+    """``rows``, ``columns`` or ``arrow``."""
+    payload: Any
+    """The situations list, the columns mapping or the Arrow table."""
+    outputs: dict[str, Any] = field(default_factory=dict)
+    routing_key: str | None = None
+
+
+def dumps(body: Any) -> str:
+    """JSON text; refuses NaN/Infinity (they are checked away before encoding)."""
+    return json.dumps(body, allow_nan=False, separators=(",", ":"))
+
+
+def read_json() -> Any:
+    if request.mimetype != JSON:
+        raise unsupported_media_type(
+            f"send {JSON} or {ARROW}, not {request.mimetype or 'no content type'!r}"
+        )
+    raw = request.get_data(cache=False)
+    try:
+        return json.loads(raw)
+    except (ValueError, RecursionError) as exc:
+        raise bad_request(
+            f"the body is not valid JSON: {exc}", [FieldError("$", "invalid JSON")]
+        ) from None
+
+
+def situation_count(data: Any) -> int:
+    if isinstance(data, dict):
+        if isinstance(data.get("situations"), list):
+            return len(data["situations"])
+        if isinstance(data.get("columns"), dict):
+            cols = data["columns"]
+            if isinstance(cols.get("id"), list):
+                return len(cols["id"])
+    return 0
+
+
+def check_size(n: int, limit: int) -> None:
+    if n > limit:
+        raise too_large(
+            f"{n} situations exceed the limit of {limit} per request (max_situations)",
+            [FieldError("$.situations", f"at most {limit} situations per request")],
+        )
+
+
+def parse_score_request() -> ParsedRequest:
+    """The body as rows, columns or an Arrow table, with the options (400/413/415 problems)."""
+    if request.mimetype == ARROW:
+        return _parse_arrow()
+    data = read_json()
+    check_size(situation_count(data), settings().max_situations)
+    loaded = ScoreRequestSchema().load(data) if isinstance(data, dict) else _not_object()
+    outputs = loaded.get("outputs") or OutputsSchema().load({})
+    if "situations" in loaded:
+        return ParsedRequest("rows", loaded["situations"], outputs, loaded.get("routing_key"))
+    check_size(column_length(loaded["columns"]), settings().max_situations)
+    return ParsedRequest("columns", loaded["columns"], outputs, loaded.get("routing_key"))
+
+
+def _not_object() -> Any:
+    raise bad_request("the body must be a JSON object", [FieldError("$", "must be an object")])
+
+
+def _parse_arrow() -> ParsedRequest:
+    import pyarrow as pa
+
+    try:
+        query = ArrowQuerySchema().load(request.args.to_dict())
+    except ValidationError as exc:
+        raise bad_request(
+            "the query parameters are not valid", marshmallow_errors(exc.messages, "query")
+        ) from None
+    raw = request.get_data(cache=False)
+    try:
+        table = pa.ipc.open_stream(raw).read_all()
+    except (pa.ArrowInvalid, pa.ArrowException, OSError, ValueError) as exc:
+        raise bad_request(
+            f"the body is not an Arrow IPC stream: {exc}",
+            [FieldError("$", "invalid Arrow IPC stream")],
+        ) from None
+    outputs = {k: v for k, v in query.items() if k != "routing_key"}
+    outputs["elasticities"] = [e.strip() for e in query["elasticities"].split(",") if e.strip()]
+    return ParsedRequest("arrow", table, outputs, query.get("routing_key"))
+
+
+def decode(parsed: ParsedRequest, model: Any) -> Decoded:
+    if parsed.form == "rows":
+        decoded = decode_rows(model, parsed.payload)
+    elif parsed.form == "columns":
+        decoded = decode_columns(model, parsed.payload)
+    else:
+        from .codecs.long_table import decode_arrow
+
+        decoded = decode_arrow(model, parsed.payload)
+    return decoded
+
+
+def options_path(path: str, form: str) -> str:
+    """A core option path (``options.elasticities[0]``) as the caller wrote it."""
+    if path.startswith("options."):
+        rest = path.removeprefix("options.")
+        return f"query.{rest}" if form == "arrow" else f"$.return.{rest}"
+    return path if path.startswith("$") else f"$.{path}"
+
+
+def run_score(
+    model: Any, decoded: Decoded, outputs: Outputs, form: str
+) -> tuple[ScoreResult, BatchCheck, list[FieldError]]:
+    """Check then score; every refusal is a 422 naming the fields."""
+    check = check_batch(model, decoded.batch)
+    if check.problems or decoded.problems:
+        count = check.problem_count + len(decoded.problems)
+        omitted = check.problem_count - len(check.problems)
+        more = f" ({omitted} more not listed)" if omitted > 0 else ""
+        raise unprocessable(
+            f"{count} value(s) cannot be scored{more}",
+            [*decoded.problems, *decoded.errors(check.problems)],
+        )
+    options = ScoreOptions(
+        probabilities=True,
+        logsum=outputs.logsum or outputs.expected_max_utility,
+        surplus=outputs.surplus,
+        elasticities=outputs.elasticities,
+        aggregate=outputs.aggregate,
+        std_errors=outputs.std_errors,
+    )
+    try:
+        result = score(model, check.batch, options)
+    except ScoringError as exc:
+        raise unprocessable(
+            "the options cannot be served by this model version",
+            [FieldError(options_path(p.path, form), p.message) for p in exc.problems],
+        ) from None
+    require_finite(result, decoded.ids)
+    return result, check, decoded.errors(check.warnings)
+
+
+def shadow_score(
+    name: str,
+    live_version: str,
+    shadow_version: str,
+    parsed: ParsedRequest,
+    live_alternatives: tuple[str, ...],
+    live_p: np.ndarray,
+) -> None:
+    """Score the shadow version on the same input and record max |dP|; never raises."""
+    try:
+        loaded = registry().get(name, shadow_version)
+        model = loaded.compiled
+        decoded = decode(parsed, model)
+        check = check_batch(model, decoded.batch)
+        if check.problems or decoded.problems:
+            raise ValueError(f"{check.problem_count} problem(s) in the shadow check")
+        result = score(model, check.batch, ScoreOptions(probabilities=True, logsum=False))
+        shared = [a for a in live_alternatives if a in model.alternatives]
+        live_idx = [live_alternatives.index(a) for a in shared]
+        shadow_idx = [model.alternatives.index(a) for a in shared]
+        assert result.probabilities is not None
+        dp = np.abs(result.probabilities[:, shadow_idx] - live_p[:, live_idx])
+        divergence = float(dp.max()) if dp.size else 0.0
+        if not np.isfinite(divergence):
+            raise ValueError("non-finite shadow probabilities")
+        metrics.SHADOW_DIVERGENCE.labels(name, live_version, shadow_version).observe(divergence)
+        metrics.SHADOW_LAST.labels(name, live_version, shadow_version).set(divergence)
+    except Exception as exc:  # the shadow never fails a request
+        metrics.SHADOW_FAILURES.labels(name, shadow_version).inc()
+        log.warning("shadow scoring of %s/%s failed: %s", name, shadow_version, exc)

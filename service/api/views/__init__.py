@@ -1,0 +1,1 @@
+"""Blueprints, one per area: health, metrics, openapi, models, scoring, admin."""

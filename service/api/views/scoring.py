@@ -1,0 +1,129 @@
+"""Scoring: POST /v1/models/{name}/score (routed), .../versions/{version}/score (pinned),
+and POST /v1/models/{name}/scenarios.  Views parse, call the core, encode."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from flask import Blueprint, Response, g
+
+from .. import auth, metrics
+from ..codecs.arrow import MEDIA_TYPE as ARROW
+from ..codecs.arrow import encode_arrow
+from ..codecs.results import aggregate_json, encode_columns, encode_rows, outputs_from
+from ..context import registry, settings, tokens
+from ..problems import ApiError, not_found
+from ..routing import Decision, route
+from ..scoring_flow import (
+    ParsedRequest,
+    check_size,
+    decode,
+    dumps,
+    parse_score_request,
+    run_score,
+    shadow_score,
+)
+from .models import load
+
+blueprint = Blueprint("scoring", __name__)
+
+
+@blueprint.post("/v1/models/<name>/score")
+def score_routed(name: str) -> Response:
+    return _score(name, None)
+
+
+@blueprint.post("/v1/models/<name>/versions/<version>/score")
+def score_pinned(name: str, version: str) -> Response:
+    return _score(name, version)
+
+
+def choose(
+    name: str, pinned: str | None, key: str | None
+) -> tuple[Decision, int | None, str | None]:
+    """(decision, routing generation, shadow version to score afterwards)."""
+    reg = registry()
+    if name not in reg.known_models():
+        raise not_found(f"no model named {name!r}")
+    routing = reg.routing(name)
+    generation = routing.generation if routing is not None else None
+    if pinned is not None:
+        return Decision(pinned, "pinned"), generation, None
+    if routing is None:
+        raise ApiError(
+            409,
+            "not-routed",
+            "Model not routed",
+            f"model {name!r} has no live version; route one or pin a version "
+            f"(/v1/models/{name}/versions/{{version}}/score)",
+        )
+    decision = route(name, routing.live, key)
+    shadow = routing.shadow if settings().shadow and routing.shadow != decision.version else None
+    return decision, generation, shadow
+
+
+def _score(name: str, pinned: str | None) -> Response:
+    auth.require(tokens(), "score")
+    g.model = name
+    parsed: ParsedRequest = parse_score_request()
+    decision, generation, shadow = choose(name, pinned, parsed.routing_key)
+    loaded = load(name, decision.version)
+    g.version, g.decision, g.generation = loaded.version, decision.decision, generation
+    model = loaded.compiled
+    decoded = decode(parsed, model)
+    check_size(decoded.batch.size, settings().max_situations)
+    g.situations = decoded.batch.size
+    outputs = outputs_from(parsed.outputs)
+    result, check, warnings = run_score(model, decoded, outputs, parsed.form)
+
+    alternatives = list(model.alternatives)
+    routing_info = {"decision": decision.decision, "generation": generation}
+    if parsed.form == "arrow":
+        meta: dict[str, Any] = {
+            "model": name,
+            "version": loaded.version,
+            "routing": routing_info,
+            "warnings": [w.as_dict() for w in warnings],
+            "warning_count": check.warning_count,
+        }
+        if outputs.aggregate:
+            meta["aggregate"] = aggregate_json(alternatives, result)
+        body = encode_arrow(
+            alternatives, decoded.ids, decoded.batch.available, result, outputs, meta
+        )
+        response = Response(body, mimetype=ARROW)
+    else:
+        out: dict[str, Any] = {
+            "model": name,
+            "version": loaded.version,
+            "routing": routing_info,
+            "alternatives": alternatives,
+        }
+        if parsed.form == "rows":
+            out["situations"] = encode_rows(alternatives, decoded.ids, result, outputs, {})
+        else:
+            out["columns"] = encode_columns(alternatives, decoded.ids, result, outputs)
+        if outputs.aggregate:
+            out["aggregate"] = aggregate_json(alternatives, result)
+        out["warnings"] = [w.as_dict() for w in warnings]
+        out["warning_count"] = check.warning_count
+        response = Response(dumps(out), mimetype="application/json")
+    response.headers["X-Model-Name"] = name
+    response.headers["X-Model-Version"] = loaded.version
+    response.headers["X-Routing-Decision"] = decision.decision
+    if generation is not None:
+        response.headers["X-Routing-Generation"] = str(generation)
+
+    metrics.ROUTING.labels(name, loaded.version, decision.decision).inc()
+    metrics.SITUATIONS.labels(name, loaded.version).inc(decoded.batch.size)
+    if check.warning_count:
+        metrics.OUT_OF_RANGE.labels(name, loaded.version).inc(check.warning_count)
+    if shadow is not None and result.probabilities is not None:
+        live_p = result.probabilities
+        live_alts = tuple(model.alternatives)
+
+        def _shadow() -> None:
+            shadow_score(name, loaded.version, shadow, parsed, live_alts, live_p)
+
+        response.call_on_close(_shadow)
+    return response
