@@ -7,7 +7,7 @@ import time
 
 import numpy as np
 import pytest
-from conftest import FERRY_NAMES, FERRY_SPEC, free_port, publish_ferry
+from store_cases import FERRY_NAMES, FERRY_SPEC, free_port, publish_ferry
 
 from model_store import StoreError, StoreUnavailable, open_store
 from model_store.inputs import read_coefficients, read_covariance, read_model_inputs

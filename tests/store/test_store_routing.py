@@ -8,7 +8,7 @@ import multiprocessing
 import threading
 
 import pytest
-from conftest import publish_ferry, raw_get, raw_put, reopen
+from store_cases import publish_ferry, raw_get, raw_put, reopen
 
 from model_store import NotFound, RoutingConflict, RoutingError, Store, open_store
 

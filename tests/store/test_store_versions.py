@@ -9,7 +9,7 @@ import json
 import numpy as np
 import pyarrow.parquet as pq
 import pytest
-from conftest import FERRY_NAMES, FERRY_SPEC, ferry_coefficients, publish_ferry, raw_get, raw_put
+from store_cases import FERRY_NAMES, FERRY_SPEC, ferry_coefficients, publish_ferry, raw_get, raw_put
 
 from model_store import ArtifactError, NotFound, Store, StoreError, VersionExists
 from service.choice.spec import SpecError, spec_from_dict, spec_to_dict
