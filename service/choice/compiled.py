@@ -100,7 +100,7 @@ class CompiledModel:
     def required_context(self) -> tuple[str, ...]:
         """Context variables the model uses."""
         return tuple(
-            c for c, used in zip(self.context, self.required_context_mask, strict=False) if used
+            c for c, used in zip(self.context, self.required_context_mask, strict=True) if used
         )
 
     def alternative_index(self, alternative: str) -> int:
