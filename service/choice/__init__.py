@@ -6,6 +6,14 @@ from service.choice.checks import BatchCheck, check_batch
 from service.choice.compiled import CompiledModel, compile_model
 from service.choice.elasticities import Elasticities
 from service.choice.errors import ScoringError
+from service.choice.scenarios import (
+    Change,
+    Outcome,
+    ScenarioResult,
+    Variant,
+    VariantOutcome,
+    run_scenarios,
+)
 from service.choice.scoring import EULER_GAMMA, ScoreOptions, ScoreResult, score
 from service.choice.spec import (
     Coefficients,
@@ -24,18 +32,24 @@ __all__ = [
     "Batch",
     "BatchCheck",
     "BatchProblem",
+    "Change",
     "Coefficients",
     "CompiledModel",
     "Elasticities",
     "ModelSpec",
+    "Outcome",
     "Problem",
+    "ScenarioResult",
     "ScoreOptions",
     "ScoreResult",
     "ScoringError",
     "SpecError",
+    "Variant",
+    "VariantOutcome",
     "WillingnessToPay",
     "check_batch",
     "compile_model",
+    "run_scenarios",
     "score",
     "spec_from_dict",
     "spec_to_dict",
