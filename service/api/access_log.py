@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import logging
+import os
 import re
 import sys
 import time
@@ -84,6 +85,7 @@ def install(app: Flask, log_requests: bool) -> None:
                 "bytes_in": request.content_length or 0,
                 "bytes_out": response.calculate_content_length() or 0,
                 "remote": request.remote_addr,
+                "pid": os.getpid(),
             }
             for key in ("model", "version", "decision", "generation", "situations", "problem"):
                 if g.get(key) is not None:

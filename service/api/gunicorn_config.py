@@ -30,6 +30,9 @@ loglevel = os.environ.get("CHOICECAST_LOG_LEVEL", "info").lower()
 limit_request_line = 8190
 forwarded_allow_ips = os.environ.get("CHOICECAST_FORWARDED_ALLOW_IPS", "127.0.0.1")
 proc_name = "choicecast"
+# No runtime control socket: nothing manages the server through it, and several servers on one
+# host would otherwise share its default path.
+control_socket_disable = True
 
 
 def child_exit(server, worker) -> None:
@@ -38,3 +41,10 @@ def child_exit(server, worker) -> None:
         from prometheus_client import multiprocess
 
         multiprocess.mark_process_dead(worker.pid)
+
+
+def post_worker_init(worker) -> None:
+    """Start the worker's routing poller as soon as it has loaded the app (after the fork)."""
+    registry = getattr(worker.wsgi, "extensions", {}).get("choicecast.registry")
+    if registry is not None:
+        registry.ensure_poller()

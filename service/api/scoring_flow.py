@@ -20,7 +20,7 @@ from .codecs.columns import column_length, decode_columns
 from .codecs.decoded import Decoded
 from .codecs.results import Outputs, require_finite
 from .codecs.rows import decode_rows
-from .context import registry, settings
+from .context import settings
 from .problems import (
     FieldError,
     bad_request,
@@ -29,6 +29,7 @@ from .problems import (
     unprocessable,
     unsupported_media_type,
 )
+from .registry import Registry
 from .schemas import ArrowQuerySchema, OutputsSchema, ScoreRequestSchema
 
 log = logging.getLogger("choicecast.scoring")
@@ -177,6 +178,7 @@ def run_score(
 
 
 def shadow_score(
+    reg: Registry,
     name: str,
     live_version: str,
     shadow_version: str,
@@ -186,7 +188,7 @@ def shadow_score(
 ) -> None:
     """Score the shadow version on the same input and record max |dP|; never raises."""
     try:
-        loaded = registry().get(name, shadow_version)
+        loaded = reg.get(name, shadow_version)
         model = loaded.compiled
         decoded = decode(parsed, model)
         check = check_batch(model, decoded.batch)

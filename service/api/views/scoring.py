@@ -121,9 +121,10 @@ def _score(name: str, pinned: str | None) -> Response:
     if shadow is not None and result.probabilities is not None:
         live_p = result.probabilities
         live_alts = tuple(model.alternatives)
+        reg = registry()
 
         def _shadow() -> None:
-            shadow_score(name, loaded.version, shadow, parsed, live_alts, live_p)
+            shadow_score(reg, name, loaded.version, shadow, parsed, live_alts, live_p)
 
         response.call_on_close(_shadow)
     return response
