@@ -1,0 +1,175 @@
+"""Published, corrupt, partial and hostile versions written into a store, for fault tests.
+
+The good model is invented: islanders choosing between a ``ferry``, a ``plane`` and staying
+home (``stay``, the outside option) for a weekend trip; the numbers are made up.  Hostile
+versions are written key by key through the store's backend (as a broken or malicious
+publisher would), bypassing :meth:`model_store.Store.publish` and its checks.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import pickle
+from collections.abc import Mapping
+from typing import Any
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from model_store import Store
+from model_store.artifact import (
+    COEFFICIENTS,
+    MANIFEST,
+    build_manifest,
+    coefficients_bytes,
+    manifest_bytes,
+    sha256,
+)
+from model_store.routing import RoutingState, encode, record_key
+from service.choice.spec import Coefficients, ModelSpec, spec_from_dict, spec_to_dict
+
+MODEL = "weekend"
+
+
+def spec() -> ModelSpec:
+    return spec_from_dict(
+        {
+            "name": MODEL,
+            "family": "multinomial",
+            "alternatives": [{"id": "ferry"}, {"id": "plane"}, {"id": "stay", "outside": True}],
+            "attributes": [
+                {"name": "fare", "unit": "EUR", "low": 5.0, "high": 400.0, "role": "cost"},
+                {"name": "hours", "unit": "h", "low": 0.5, "high": 12.0},
+            ],
+            "context": [{"name": "party", "unit": "people", "low": 1.0, "high": 8.0}],
+            "utilities": {
+                "ferry": [
+                    {"coefficient": "asc_ferry"},
+                    {"coefficient": "b_fare", "attribute": "fare"},
+                    {"coefficient": "b_hours", "attribute": "hours", "transform": "log"},
+                ],
+                "plane": [
+                    {"coefficient": "asc_plane"},
+                    {"coefficient": "b_fare", "attribute": "fare"},
+                    {"coefficient": "b_hours", "attribute": "hours", "transform": "log"},
+                    {"coefficient": "b_party_plane", "context": "party"},
+                ],
+                "stay": [],
+            },
+        }
+    )
+
+
+def coefficients(shift: float = 0.0) -> Coefficients:
+    """Made-up estimates; ``shift`` moves the fare coefficient (a re-estimate)."""
+    return Coefficients.from_mapping(
+        {
+            "asc_ferry": 1.1,
+            "asc_plane": 0.4,
+            "b_fare": -0.012 - shift,
+            "b_hours": -0.7,
+            "b_party_plane": -0.15,
+        }
+    )
+
+
+def publish_good(store: Store, version: str, shift: float = 0.0) -> None:
+    store.backend.ensure()
+    store.publish(MODEL, version, spec(), coefficients(shift), published_by="reliability-tests")
+
+
+def _prefix(model: str, version: str) -> str:
+    return f"models/{model}/versions/{version}/"
+
+
+def write_version(
+    store: Store,
+    version: str,
+    files: Mapping[str, bytes],
+    *,
+    listed: Mapping[str, bytes] | None = None,
+    manifest: bool = True,
+    manifest_extra: Mapping[str, Any] | None = None,
+) -> None:
+    """Write ``files`` under the version's prefix and (unless ``manifest`` is False, a partial
+    publish) a manifest whose ``files`` lists the sha256 of ``listed`` (default: ``files``)."""
+    prefix = _prefix(MODEL, version)
+    for name, data in files.items():
+        store.backend.put(prefix + name, data)
+    if not manifest:
+        return
+    digests = {n: sha256(d) for n, d in (files if listed is None else listed).items()}
+    body = build_manifest(
+        model=MODEL,
+        version=version,
+        spec=spec(),
+        spec_dict=spec_to_dict(spec()),
+        files=digests,
+        published_by="someone-else",
+    )
+    body.update(manifest_extra or {})
+    store.backend.put(prefix + MANIFEST, manifest_bytes(body))
+
+
+def good_coefficients_bytes(shift: float = 0.0) -> bytes:
+    return coefficients_bytes(coefficients(shift))
+
+
+class _Payload:
+    """Unpickling this creates ``marker`` (a directory): proof that something unpickled."""
+
+    def __init__(self, marker: str):
+        self.marker = marker
+
+    def __reduce__(self):
+        import os
+
+        return (os.mkdir, (self.marker,))
+
+
+def pickle_payload(marker: str) -> bytes:
+    return pickle.dumps(_Payload(marker))
+
+
+def parquet_with_pickled_extension(marker: str) -> bytes:
+    """A Parquet coefficients file whose ``estimate`` column claims the pickle-based Arrow
+    extension type ``arrow.py_extension_type`` with a payload (a known deserialisation
+    attack on Arrow readers; pyarrow refuses to unpickle it unless told to)."""
+    base = pq.read_table(pa.BufferReader(good_coefficients_bytes()))
+    field = base.schema.field("estimate").with_metadata(
+        {
+            b"ARROW:extension:name": b"arrow.py_extension_type",
+            b"ARROW:extension:metadata": pickle_payload(marker),
+        }
+    )
+    schema = base.schema.set(base.schema.get_field_index("estimate"), field)
+    table = pa.Table.from_arrays(base.columns, schema=schema)
+    sink = io.BytesIO()
+    pq.write_table(table, sink, store_schema=True)
+    return sink.getvalue()
+
+
+def force_routing(store: Store, live: Mapping[str, float], reason: str = "forced") -> int:
+    """Write the next routing record directly (no validation): what a buggy or hostile writer
+    could leave in the store.  Returns its generation."""
+    generation = store.routing_generation(MODEL) + 1
+    state = RoutingState(
+        model=MODEL,
+        generation=generation,
+        live=dict(live),
+        previous_generation=generation - 1,
+        action="route",
+        changed_by="someone-else",
+        changed_at="2026-01-01T00:00:00Z",
+        reason=reason,
+    )
+    store.backend.put(record_key(MODEL, generation), encode(state))
+    return generation
+
+
+def manifest_of(store: Store, version: str) -> dict[str, Any]:
+    return json.loads(store.backend.get(_prefix(MODEL, version) + MANIFEST))
+
+
+COEFFICIENTS_FILE = COEFFICIENTS

@@ -1,0 +1,225 @@
+"""A bounded HTTP load generator: fixed concurrency, fixed duration, keep-alive connections.
+
+    python -m tests.support.loadgen --port 8000 --requests plan.json --duration 15 \\
+        --concurrency 8 --out report.json
+
+``plan.json`` is a list of requests ``{"method", "path", "headers", "body"}`` (``body`` a JSON
+value, sent as ``application/json``).  Each of ``concurrency`` threads owns one
+``http.client`` connection (reopened after an error or a ``Connection: close``) and sends the
+plan's requests in turn until the duration has passed; a request in flight then completes.
+
+The report counts statuses and connection errors, gives throughput and latency percentiles
+(nearest-rank, common practice), and, for JSON score responses, every distinct answer:
+``(request index, version, probabilities of every situation)`` with how often it was seen, so
+a test can check each one against the core.  Nothing here asserts timings.
+"""
+
+from __future__ import annotations
+
+import argparse
+import http.client
+import json
+import math
+import sys
+import threading
+import time
+from collections import Counter
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+
+@dataclass(frozen=True)
+class PlannedRequest:
+    method: str
+    path: str
+    body: bytes | None = None
+    headers: dict[str, str] = field(default_factory=dict)
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> PlannedRequest:
+        headers = dict(data.get("headers") or {})
+        body = None
+        if data.get("body") is not None:
+            body = json.dumps(data["body"]).encode()
+            headers.setdefault("Content-Type", "application/json")
+        return cls(data.get("method", "POST"), data["path"], body, headers)
+
+
+@dataclass
+class _Tally:
+    latencies: list[float] = field(default_factory=list)
+    statuses: Counter = field(default_factory=Counter)
+    connection_errors: Counter = field(default_factory=Counter)
+    answers: Counter = field(default_factory=Counter)
+    unreadable: int = 0
+    bad_samples: list[str] = field(default_factory=list)
+
+
+def percentile(sorted_values: Sequence[float], q: float) -> float:
+    """Nearest-rank percentile ``q`` in [0, 100] of already sorted values (common practice)."""
+    if not sorted_values:
+        return math.nan
+    rank = max(1, math.ceil(q / 100.0 * len(sorted_values)))
+    return sorted_values[rank - 1]
+
+
+def _answer_key(index: int, payload: bytes) -> tuple | None:
+    """(request index, version, per-situation probabilities as sorted item tuples)."""
+    doc = json.loads(payload)
+    situations = doc.get("situations")
+    if not isinstance(situations, list):
+        return None
+    probabilities = tuple(tuple(sorted(s.get("probabilities", {}).items())) for s in situations)
+    return (index, doc.get("version"), probabilities)
+
+
+def _worker(
+    host: str,
+    port: int,
+    plan: Sequence[PlannedRequest],
+    offset: int,
+    deadline: float,
+    record_answers: bool,
+    tally: _Tally,
+    timeout: float,
+) -> None:
+    conn: http.client.HTTPConnection | None = None
+    k = offset
+    while time.monotonic() < deadline:
+        index = k % len(plan)
+        k += 1
+        request = plan[index]
+        if conn is None:
+            conn = http.client.HTTPConnection(host, port, timeout=timeout)
+        started = time.perf_counter()
+        try:
+            conn.request(request.method, request.path, body=request.body, headers=request.headers)
+            response = conn.getresponse()
+            payload = response.read()
+        except (OSError, http.client.HTTPException) as exc:
+            tally.connection_errors[type(exc).__name__] += 1
+            conn.close()
+            conn = None
+            time.sleep(0.01)  # do not spin while a server is gone
+            continue
+        tally.latencies.append(time.perf_counter() - started)
+        tally.statuses[response.status] += 1
+        if response.will_close:
+            conn.close()
+            conn = None
+        if response.status >= 400 and len(tally.bad_samples) < 5:
+            tally.bad_samples.append(f"{response.status} {payload[:500]!r}")
+        if record_answers and response.status == 200:
+            try:
+                key = _answer_key(index, payload)
+            except ValueError:
+                key = None
+            if key is None:
+                tally.unreadable += 1
+            else:
+                tally.answers[key] += 1
+    if conn is not None:
+        conn.close()
+
+
+def run_load(
+    host: str,
+    port: int,
+    plan: Sequence[PlannedRequest],
+    duration: float,
+    concurrency: int,
+    *,
+    record_answers: bool = True,
+    timeout: float = 30.0,
+) -> dict[str, Any]:
+    """Run the plan for ``duration`` seconds on ``concurrency`` threads; returns the report."""
+    if not plan:
+        raise ValueError("the plan has no requests")
+    tallies = [_Tally() for _ in range(concurrency)]
+    deadline = time.monotonic() + duration
+    threads = [
+        threading.Thread(
+            target=_worker,
+            args=(host, port, plan, i, deadline, record_answers, tallies[i], timeout),
+            daemon=True,
+        )
+        for i in range(concurrency)
+    ]
+    started = time.perf_counter()
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(duration + timeout + 5)
+    elapsed = time.perf_counter() - started
+    latencies = sorted(x for t in tallies for x in t.latencies)
+    statuses: Counter = sum((t.statuses for t in tallies), Counter())
+    errors: Counter = sum((t.connection_errors for t in tallies), Counter())
+    answers: Counter = sum((t.answers for t in tallies), Counter())
+    completed = len(latencies)
+    ok = sum(n for s, n in statuses.items() if 200 <= s < 300)
+    return {
+        "duration_s": elapsed,
+        "concurrency": concurrency,
+        "completed": completed,
+        "ok": ok,
+        "statuses": {str(s): n for s, n in sorted(statuses.items())},
+        "connection_errors": dict(errors),
+        "unreadable_answers": sum(t.unreadable for t in tallies),
+        "bad_samples": [s for t in tallies for s in t.bad_samples][:5],
+        "throughput_rps": completed / elapsed if elapsed > 0 else 0.0,
+        "latency_ms": {
+            "p50": percentile(latencies, 50) * 1e3,
+            "p90": percentile(latencies, 90) * 1e3,
+            "p99": percentile(latencies, 99) * 1e3,
+            "max": (latencies[-1] * 1e3) if latencies else math.nan,
+        },
+        "threads_alive": sum(t.is_alive() for t in threads),
+        "answers": [
+            {
+                "request": index,
+                "version": version,
+                "probabilities": [dict(p) for p in probabilities],
+                "count": count,
+            }
+            for (index, version, probabilities), count in sorted(
+                answers.items(), key=lambda kv: (kv[0][0], str(kv[0][1]))
+            )
+        ],
+    }
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--host", default="127.0.0.1")
+    parser.add_argument("--port", type=int, required=True)
+    parser.add_argument("--requests", type=Path, required=True, help="JSON list of requests")
+    parser.add_argument("--duration", type=float, default=10.0)
+    parser.add_argument("--concurrency", type=int, default=8)
+    parser.add_argument("--timeout", type=float, default=30.0, help="per request, seconds")
+    parser.add_argument("--no-answers", action="store_true", help="do not record answers")
+    parser.add_argument("--out", type=Path, help="write the report here (default: stdout)")
+    args = parser.parse_args(argv)
+    if args.host not in ("127.0.0.1", "localhost", "::1"):
+        parser.error("the load generator only targets the local machine")
+    plan = [PlannedRequest.from_dict(d) for d in json.loads(args.requests.read_text())]
+    report = run_load(
+        args.host,
+        args.port,
+        plan,
+        args.duration,
+        args.concurrency,
+        record_answers=not args.no_answers,
+        timeout=args.timeout,
+    )
+    text = json.dumps(report, indent=1)
+    if args.out:
+        args.out.write_text(text + "\n")
+    else:
+        sys.stdout.write(text + "\n")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
