@@ -52,10 +52,10 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     def _poller() -> None:
         registry.ensure_poller()
 
-    from .views import admin, health, models, openapi, scoring
+    from .views import admin, health, models, openapi, scenarios, scoring
     from .views import metrics as metrics_view
 
-    for module in (health, metrics_view, openapi, models, scoring, admin):
+    for module in (health, metrics_view, openapi, models, scoring, scenarios, admin):
         app.register_blueprint(module.blueprint)
 
     registry.refresh()

@@ -38,6 +38,13 @@ class StrictBool(fields.Boolean):
         return value
 
 
+class QueryBool(fields.Boolean):
+    """A query-string flag: true/false (also 1/0, yes/no)."""
+
+    truthy = frozenset({"true", "1", "yes"})
+    falsy = frozenset({"false", "0", "no"})
+
+
 class NumberColumn(fields.Field):
     """A list of JSON numbers, loaded as one float64 array (vectorised type check)."""
 
@@ -201,13 +208,13 @@ class ArrowQuerySchema(Strict):
     """Options of an Arrow request, as query parameters (comma-separated lists)."""
 
     routing_key = fields.String(validate=KEY)
-    probabilities = StrictBool(load_default=True)
-    logsum = StrictBool(load_default=False)
-    expected_max_utility = StrictBool(load_default=False)
-    surplus = StrictBool(load_default=False)
+    probabilities = QueryBool(load_default=True)
+    logsum = QueryBool(load_default=False)
+    expected_max_utility = QueryBool(load_default=False)
+    surplus = QueryBool(load_default=False)
     elasticities = fields.String(load_default="")
-    aggregate = StrictBool(load_default=False)
-    std_errors = StrictBool(load_default=False)
+    aggregate = QueryBool(load_default=False)
+    std_errors = QueryBool(load_default=False)
 
 
 class ChangeSchema(Strict):
@@ -337,11 +344,16 @@ class ScoreResponseSchema(Schema):
 
 class VariantResultSchema(Schema):
     name = fields.String(required=True)
-    shares = fields.Dict(keys=fields.String(), values=FiniteNumber())
+    shares = fields.Dict(keys=fields.String(), values=FiniteNumber(), required=True)
+    revenue_total = FiniteNumber(
+        allow_none=True, metadata={"description": "sum_n w_n sum_j P_nj cost_nj"}
+    )
     share_deltas = fields.Dict(keys=fields.String(), values=FiniteNumber())
-    surplus_change = FiniteNumber(allow_none=True)
-    revenue = FiniteNumber(allow_none=True)
-    revenue_change = FiniteNumber(allow_none=True)
+    surplus_change_total = FiniteNumber(
+        allow_none=True, metadata={"description": "sum_n w_n (logsum_1 - logsum_0) / alpha"}
+    )
+    surplus_change_mean = FiniteNumber(allow_none=True)
+    revenue_change_total = FiniteNumber(allow_none=True)
 
 
 class ScenarioResponseSchema(Schema):
@@ -351,6 +363,7 @@ class ScenarioResponseSchema(Schema):
     alternatives = fields.List(fields.String(), required=True)
     base = fields.Nested(VariantResultSchema, required=True)
     variants = fields.List(fields.Nested(VariantResultSchema), required=True)
+    surplus_unavailable = fields.String(allow_none=True)
     warnings = fields.List(fields.Nested(FieldErrorSchema))
 
 

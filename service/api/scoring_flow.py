@@ -16,6 +16,7 @@ from service.choice import BatchCheck, ScoreOptions, ScoreResult, ScoringError, 
 
 from . import metrics
 from .codecs.arrow import MEDIA_TYPE as ARROW
+from .codecs.arrow import decode_arrow
 from .codecs.columns import column_length, decode_columns
 from .codecs.decoded import Decoded
 from .codecs.results import Outputs, require_finite
@@ -131,8 +132,6 @@ def decode(parsed: ParsedRequest, model: Any) -> Decoded:
     elif parsed.form == "columns":
         decoded = decode_columns(model, parsed.payload)
     else:
-        from .codecs.long_table import decode_arrow
-
         decoded = decode_arrow(model, parsed.payload)
     return decoded
 

@@ -1,4 +1,6 @@
-"""Arrow IPC stream responses: a long table, one row per (situation, alternative).
+"""Arrow IPC streams: a long table in, a long table out (one row per situation, alternative).
+
+Requests use the shared long-table layout (:mod:`service.codecs.long_table`).  Responses:
 
 Columns: ``situation`` (string), ``alternative`` (string), ``available`` (bool), and as
 requested ``probability``, ``probability_std_error``, ``logsum``, ``expected_max_utility``,
@@ -20,8 +22,11 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 
-from service.choice import ScoreResult
+from service.choice import BatchProblem, ScoreResult
+from service.codecs.long_table import batch_from_table
 
+from ..problems import FieldError
+from .decoded import Decoded
 from .results import Outputs
 
 MEDIA_TYPE = "application/vnd.apache.arrow.stream"
@@ -77,3 +82,24 @@ def encode_arrow(
     with pa.ipc.new_stream(sink, table.schema) as writer:
         writer.write_table(table)
     return sink.getvalue().to_pybytes()
+
+
+def decode_arrow(model: Any, table: pa.Table) -> Decoded:
+    """An Arrow long table (situation, alternative, attribute columns, available, context
+    columns, weight) into a batch, by the shared long-table codec.
+
+    Problems name ``row[<r>].<column>`` (0-based row of the request table) or
+    ``column.<name>``; value problems found later name ``situation[<id>].<field>``.
+    """
+    ids, batch, problems = batch_from_table(model, table)
+    errors = tuple(
+        FieldError(f"row[{p.row}].{p.column}" if p.row >= 0 else f"column.{p.column}", p.message)
+        for p in problems
+    )
+    id_list = [str(v) for v in ids.to_pylist()] if len(ids) else []
+
+    def locate(p: BatchProblem) -> str:
+        where = f"situation[{id_list[p.situation]}]" if p.situation >= 0 else "situations"
+        return where + "".join(f".{f}" for f in p.field)
+
+    return Decoded(ids=id_list, batch=batch, problems=errors, locate=locate, form="arrow")
