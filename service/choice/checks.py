@@ -97,19 +97,20 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
         return BatchCheck((bp,), (), batch, 1, 0)
 
     js, as_ = np.nonzero(model.required)
-    cell_ok = np.ones((n, len(js)), dtype=bool)
-    for r, (j, a) in enumerate(zip(js, as_, strict=True)):
-        alt, attr = model.alternatives[j], model.attributes[a]
-        field = ("attributes", alt, attr)
+    # One pass over the whole array: its sum is finite only if every cell is (an
+    # overflowing sum of finite values merely sends us to the per-cell check).
+    with np.errstate(over="ignore", invalid="ignore"):
+        all_finite = bool(np.isfinite(x.sum()))
+    for j, a in zip(js, as_, strict=True):
+        field = ("attributes", model.alternatives[j], model.attributes[a])
         col, live = x[:, j, a], avail[:, j]
-        finite = np.isfinite(col)
-        problems.add(live & ~finite, field, "must be given as a finite number (got {v})", col)
-        cell_ok[:, r] = finite
+        if not all_finite:
+            bad = live & ~np.isfinite(col)
+            problems.add(bad, field, "must be given as a finite number (got {v})", col)
         if model.log_cells[j, a]:
-            bad = live & finite & (col <= 0)
-            problems.add(bad, field, "must be > 0 under log (got {v:g})", col)
+            problems.add(live & (col <= 0), field, "must be > 0 under log (got {v:g})", col)
         if model.log1p_cells[j, a]:
-            bad = live & finite & (col <= -1)
+            bad = live & (col <= -1)
             problems.add(bad, field, "must be > -1 under log1p (got {v:g})", col)
     used_c = np.flatnonzero(model.required_context_mask)
     for c in used_c:

@@ -24,10 +24,10 @@ class ChoiceState:
     """P (J, N)."""
     logsum: np.ndarray
     """(N,): ln sum_j exp V_j (MNL) or ln sum_m exp(lambda_m I_m) (nested)."""
-    utilities: np.ndarray
-    """V (J, N) with -inf where unavailable."""
     available: np.ndarray
     """(J, N) bool."""
+    utilities: np.ndarray | None = None
+    """Nested: V (J, N) with -inf where unavailable (multinomial: consumed in place)."""
     conditional: np.ndarray | None = None
     """Nested: P(j | nest of j) (J, N)."""
     inclusive: np.ndarray | None = None
@@ -62,16 +62,18 @@ def choice_probabilities(model: CompiledModel, v: np.ndarray, available: np.ndar
 
 
 def _multinomial(v: np.ndarray, available: np.ndarray) -> ChoiceState:
+    """In place: ``v`` becomes P."""
     m = v.max(axis=0)
     shift = np.where(np.isfinite(m), m, 0.0)
-    p = v - shift
+    p = v
+    p -= shift
     np.exp(p, out=p)
     s = p.sum(axis=0)
     with np.errstate(divide="ignore", invalid="ignore"):
         p /= s
         logsum = np.log(s)
     logsum += shift
-    return ChoiceState(probabilities=p, logsum=logsum, utilities=v, available=available)
+    return ChoiceState(probabilities=p, logsum=logsum, available=available)
 
 
 def _nested(model: CompiledModel, v: np.ndarray, available: np.ndarray) -> ChoiceState:

@@ -37,7 +37,7 @@ def scale_log_derivatives(model: CompiledModel, state: ChoiceState) -> np.ndarra
     if not model.nested:
         return out
     assert state.conditional is not None and state.inclusive is not None
-    assert state.nest_probabilities is not None
+    assert state.nest_probabilities is not None and state.utilities is not None
     v = np.where(state.available, state.utilities, 0.0)
     for m, k in enumerate(model.nest_scale_index):
         lam = model.nest_scales[m]
