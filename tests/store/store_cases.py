@@ -2,20 +2,10 @@
 
 from __future__ import annotations
 
-import socket
-
 import numpy as np
 
 from model_store import Store, open_store
 from service.choice.spec import Coefficients, spec_from_dict
-
-BUCKET = "choicecast-test"
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def reopen(store: Store) -> Store:

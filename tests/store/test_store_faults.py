@@ -7,11 +7,12 @@ import time
 
 import numpy as np
 import pytest
-from store_cases import FERRY_NAMES, FERRY_SPEC, free_port, publish_ferry
+from store_cases import FERRY_NAMES, FERRY_SPEC, publish_ferry
 
 from model_store import StoreError, StoreUnavailable, open_store
 from model_store.inputs import read_coefficients, read_covariance, read_model_inputs
 from service.choice.spec import SpecError, validate_model
+from tests.store.s3_server import free_port
 
 
 def write(tmp_path, name: str, text: str):
