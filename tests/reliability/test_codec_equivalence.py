@@ -83,9 +83,7 @@ def columns_body(batch: list[dict]) -> dict:
                 for j, alt in enumerate(ALTS[:2])
             },
             "context": {"party": [s["party"] for s in batch]},
-            "available": {
-                alt: [s["available"][j] for s in batch] for j, alt in enumerate(ALTS)
-            },
+            "available": {alt: [s["available"][j] for s in batch] for j, alt in enumerate(ALTS)},
             "weight": [s["weight"] for s in batch],
         },
     }
@@ -123,9 +121,7 @@ def answers_from_json(body: dict) -> list[tuple[tuple[float, ...], float]]:
         ]
     cols = body["columns"]
     n = len(cols["id"])
-    return [
-        (tuple(cols["probabilities"][a][i] for a in ALTS), cols["logsum"][i]) for i in range(n)
-    ]
+    return [(tuple(cols["probabilities"][a][i] for a in ALTS), cols["logsum"][i]) for i in range(n)]
 
 
 def answers_from_arrow(payload: bytes) -> list[tuple[tuple[float, ...], float]]:

@@ -10,8 +10,8 @@ plan's requests in turn until the duration has passed; a request in flight then 
 
 The report counts statuses and connection errors, gives throughput and latency percentiles
 (nearest-rank, common practice), and, for JSON score responses, every distinct answer:
-``(request index, version, probabilities of every situation)`` with how often it was seen, so
-a test can check each one against the core.  Nothing here asserts timings.
+``(request index, version, routing generation, probabilities of every situation)`` with how
+often it was seen, so a test can check each one against the core and the routing history.  Nothing here asserts timings.
 """
 
 from __future__ import annotations
@@ -66,13 +66,14 @@ def percentile(sorted_values: Sequence[float], q: float) -> float:
 
 
 def _answer_key(index: int, payload: bytes) -> tuple | None:
-    """(request index, version, per-situation probabilities as sorted item tuples)."""
+    """(request index, version, generation, per-situation probabilities as item tuples)."""
     doc = json.loads(payload)
     situations = doc.get("situations")
     if not isinstance(situations, list):
         return None
     probabilities = tuple(tuple(sorted(s.get("probabilities", {}).items())) for s in situations)
-    return (index, doc.get("version"), probabilities)
+    generation = (doc.get("routing") or {}).get("generation")
+    return (index, doc.get("version"), generation, probabilities)
 
 
 def _worker(
@@ -180,11 +181,12 @@ def run_load(
             {
                 "request": index,
                 "version": version,
+                "generation": generation,
                 "probabilities": [dict(p) for p in probabilities],
                 "count": count,
             }
-            for (index, version, probabilities), count in sorted(
-                answers.items(), key=lambda kv: (kv[0][0], str(kv[0][1]))
+            for (index, version, generation, probabilities), count in sorted(
+                answers.items(), key=lambda kv: (kv[0][0], str(kv[0][1]), str(kv[0][2]))
             )
         ],
     }

@@ -150,3 +150,62 @@ def reference_probabilities(
         lam = scale[k]
         out[a] = math.exp((v[a] - shift) / lam) * inclusive[k] ** (lam - 1) / denominator
     return out
+
+
+def score_plan(
+    model: str,
+    batches: Sequence[Sequence[Mapping[str, Any]]],
+    token: str | None = None,
+    keyed_every: int = 2,
+) -> list[dict[str, Any]]:
+    """Load-generator requests scoring each batch on the routed endpoint; every
+    ``keyed_every``-th one carries a routing key (sticky), the others are randomly assigned."""
+    headers = {"Authorization": f"Bearer {token}"} if token else {}
+    plan = []
+    for i, situations in enumerate(batches):
+        body: dict[str, Any] = {"situations": list(situations)}
+        if keyed_every and i % keyed_every == 0:
+            body["routing_key"] = f"customer-{i}"
+        plan.append(
+            {
+                "method": "POST",
+                "path": f"/v1/models/{model}/score",
+                "headers": headers,
+                "body": body,
+            }
+        )
+    return plan
+
+
+def verify_answers(
+    report: Mapping[str, Any],
+    batches: Sequence[Sequence[Mapping[str, Any]]],
+    store: Any,
+    model: str,
+) -> dict[str, int]:
+    """Check every distinct answer of a load report: its probabilities are exactly the core's
+    for the version it names (and close to the published formula), and that version was live
+    at the routing generation it names.  Returns responses counted per version."""
+    loaded: dict[str, Any] = {}
+    history = {state.generation: state for state in store.history(model)}
+    seen: dict[str, int] = {}
+    for answer in report["answers"]:
+        version, generation = answer["version"], answer["generation"]
+        if version not in loaded:
+            loaded[version] = store.load_version(model, version)
+        artifact = loaded[version]
+        situations = batches[answer["request"]]
+        expected = core_probabilities(artifact.spec, artifact.coefficients, situations)
+        assert answer["probabilities"] == expected, (
+            f"request {answer['request']} answered by {version} differs from the core"
+        )
+        for got, situation in zip(answer["probabilities"], situations, strict=True):
+            ref = reference_probabilities(artifact.spec, artifact.coefficients, situation)
+            for alt, p in got.items():
+                assert math.isclose(p, ref[alt], rel_tol=1e-9, abs_tol=1e-12), (alt, p, ref)
+        state = history.get(generation)
+        assert state is not None, f"answer names routing generation {generation}, not recorded"
+        live = {v for v, w in state.live.items() if w > 0}
+        assert version in live, f"{version} answered at generation {generation} (live: {live})"
+        seen[version] = seen.get(version, 0) + answer["count"]
+    return seen

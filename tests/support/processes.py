@@ -17,8 +17,10 @@ import signal
 import socket
 import subprocess
 import sys
+import tempfile
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -154,13 +156,17 @@ def choicecast_command(*args: str) -> list[str]:
 
 
 def run_cli(
-    *args: str, env: Mapping[str, str] | None = None, timeout: float = 120.0
+    *args: str,
+    env: Mapping[str, str] | None = None,
+    timeout: float = 120.0,
+    cwd: Path | None = None,
 ) -> subprocess.CompletedProcess[str]:
-    """Run ``choicecast ARGS`` to completion (bounded by ``timeout``), output captured."""
+    """Run ``choicecast ARGS`` to completion (bounded by ``timeout``), output captured; ``cwd``
+    (default a scratch directory beside nothing) receives any relative output files."""
     return subprocess.run(
         choicecast_command(*args),
         env=dict(env) if env is not None else clean_env(),
-        cwd=REPO,
+        cwd=cwd or Path(tempfile.gettempdir()),
         capture_output=True,
         text=True,
         timeout=timeout,
@@ -168,9 +174,14 @@ def run_cli(
     )
 
 
-def cli_ok(*args: str, env: Mapping[str, str] | None = None, timeout: float = 120.0) -> str:
+def cli_ok(
+    *args: str,
+    env: Mapping[str, str] | None = None,
+    timeout: float = 120.0,
+    cwd: Path | None = None,
+) -> str:
     """Run the CLI and return its stdout; raise with its output if it fails."""
-    done = run_cli(*args, env=env, timeout=timeout)
+    done = run_cli(*args, env=env, timeout=timeout, cwd=cwd)
     if done.returncode != 0:
         raise AssertionError(
             f"choicecast {' '.join(args)} exited {done.returncode}\n"
@@ -247,6 +258,23 @@ def start_service(
         server.stop()
         raise RuntimeError(f"gunicorn did not start {workers} workers:\n{server.log_tail()}")
     return server
+
+
+@contextmanager
+def serving(store_uri: str, log_dir: Path, **options) -> Iterator[Running]:
+    """:func:`start_service` as a context manager that always stops the service."""
+    server = start_service(store_uri, log_dir, **options)
+    try:
+        yield server
+    finally:
+        server.stop()
+
+
+def seed_demo(root: Path, env: Mapping[str, str] | None = None) -> str:
+    """``choicecast demo --store ROOT`` (its population files land beside ``root``)."""
+    root.parent.mkdir(parents=True, exist_ok=True)
+    cli_ok("demo", "--store", str(root), env=env, cwd=root.parent)
+    return str(root)
 
 
 def _fresh_dir(path: Path) -> Path:
