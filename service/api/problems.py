@@ -74,15 +74,21 @@ def marshmallow_errors(messages: object, root: str = "$") -> list[FieldError]:
     """Flatten marshmallow's nested error messages into JSON paths (``$.a.b[3].c``)."""
     out: list[FieldError] = []
 
-    def walk(node: object, path: str) -> None:
+    def walk(node: object, path: str, under_key: bool = False) -> None:
         if isinstance(node, dict):
+            # A Dict field reports {key: {"key": [...], "value": ...}}: the entry's own path.
+            if under_key and node and set(node) <= {"key", "value"}:
+                for part in ("key", "value"):
+                    if part in node:
+                        walk(node[part], path)
+                return
             for key, value in node.items():
                 if isinstance(key, int):
                     walk(value, f"{path}[{key}]")
                 elif key == "_schema":
                     walk(value, path)
                 else:
-                    walk(value, f"{path}.{key}")
+                    walk(value, f"{path}.{key}", True)
         elif isinstance(node, list) and node and all(isinstance(m, str) for m in node):
             out.extend(FieldError(path, m) for m in node)
         elif isinstance(node, list):

@@ -318,10 +318,15 @@ class SituationResultSchema(Schema):
         keys=fields.String(),
         values=fields.Dict(keys=fields.String(), values=fields.Raw()),
         metadata={
-            "description": "by variable, then alternative i, then alternative k (or a number for a context variable)"
+            "description": "by variable, then alternative i, then alternative k: elasticity of "
+            "P_i with respect to the attribute of k (a number per i for a context variable)"
         },
     )
-    warnings = fields.List(fields.Nested(FieldErrorSchema))
+    marginal_effects = fields.Dict(
+        keys=fields.String(),
+        values=fields.Dict(keys=fields.String(), values=fields.Raw()),
+        metadata={"description": "dP_i/dx, laid out as elasticities"},
+    )
 
 
 class AggregateSchema(Schema):
@@ -339,7 +344,11 @@ class ScoreResponseSchema(Schema):
         keys=fields.String(), values=fields.Raw(), metadata={"description": "columnar results"}
     )
     aggregate = fields.Nested(AggregateSchema)
-    warnings = fields.List(fields.Nested(FieldErrorSchema))
+    warnings = fields.List(
+        fields.Nested(FieldErrorSchema),
+        metadata={"description": "inputs outside the estimation range (first 100)"},
+    )
+    warning_count = fields.Integer()
 
 
 class VariantResultSchema(Schema):

@@ -155,7 +155,7 @@ def run_score(
         more = f" ({omitted} more not listed)" if omitted > 0 else ""
         raise unprocessable(
             f"{count} value(s) cannot be scored{more}",
-            [*decoded.problems, *decoded.errors(check.problems)],
+            decoded.refusals(check.problems),
         )
     options = ScoreOptions(
         probabilities=True,

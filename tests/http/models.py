@@ -100,3 +100,41 @@ def situation(i: int = 0, **overrides: float) -> dict:
         alt, attr = key.split("__")
         attrs[alt][attr] = value
     return {"id": f"s{i}", "attributes": attrs, "context": {"income": 40.0 + i % 50}}
+
+
+def long_table(situations: list[dict]):
+    """The same situations as an Arrow long table (one row per situation and alternative)."""
+    import pyarrow as pa
+
+    rows = []
+    for s in situations:
+        for alt, attrs in s["attributes"].items():
+            available = s.get("available", {}).get(alt, True)
+            rows.append(
+                {"situation": s["id"], "alternative": alt, **attrs, "available": available,
+                 **s.get("context", {})}
+            )  # fmt: skip
+    return pa.Table.from_pylist(rows)
+
+
+def arrow_bytes(table) -> bytes:
+    import pyarrow as pa
+
+    sink = pa.BufferOutputStream()
+    with pa.ipc.new_stream(sink, table.schema) as writer:
+        writer.write_table(table)
+    return sink.getvalue().to_pybytes()
+
+
+def columns(situations: list[dict]) -> dict:
+    """The same situations in the columnar JSON form."""
+    out: dict = {"id": [s["id"] for s in situations], "attributes": {}, "context": {},
+                 "available": {}}  # fmt: skip
+    for alt in ALTERNATIVES:
+        for attr in ("fare", "time"):
+            out["attributes"].setdefault(alt, {})[attr] = [
+                s["attributes"][alt][attr] for s in situations
+            ]
+        out["available"][alt] = [s.get("available", {}).get(alt, True) for s in situations]
+    out["context"]["income"] = [s["context"]["income"] for s in situations]
+    return out

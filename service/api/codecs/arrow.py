@@ -99,7 +99,8 @@ def decode_arrow(model: Any, table: pa.Table) -> Decoded:
     id_list = [str(v) for v in ids.to_pylist()] if len(ids) else []
 
     def locate(p: BatchProblem) -> str:
-        where = f"situation[{id_list[p.situation]}]" if p.situation >= 0 else "situations"
-        return where + "".join(f".{f}" for f in p.field)
+        if p.situation < 0:
+            return ".".join(p.field) or "situations"
+        return f"situation[{id_list[p.situation]}]" + "".join(f".{f}" for f in p.field)
 
     return Decoded(ids=id_list, batch=batch, problems=errors, locate=locate, form="arrow")

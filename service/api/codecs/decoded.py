@@ -26,6 +26,15 @@ class Decoded:
     def errors(self, problems: Sequence[BatchProblem]) -> list[FieldError]:
         return [FieldError(self.locate(p), p.message) for p in problems]
 
+    def refusals(self, problems: Sequence[BatchProblem]) -> list[FieldError]:
+        """Decoding problems, then the check's problems of fields not already named (a value
+        that failed to decode is not reported again as missing)."""
+        if self.problems and self.batch.size == 0:
+            return list(self.problems)
+        named = tuple(e.path for e in self.problems)
+        later = [e for e in self.errors(problems) if not e.path.startswith(named)]
+        return [*self.problems, *later]
+
 
 def rows_locator(root: str) -> Locate:
     """``$.situations[3].attributes.bus.fare`` (``root`` is ``$.situations``)."""

@@ -7,7 +7,7 @@ from typing import Any
 
 from flask import Blueprint, Response, g, jsonify
 
-from service.choice.spec import spec_to_dict
+from service.choice.spec import NAME_PATTERN, spec_to_dict
 
 from .. import auth
 from ..context import registry, tokens
@@ -113,6 +113,8 @@ def load(name: str, version: str):
     reg = registry()
     if name not in reg.known_models():
         raise not_found(f"no model named {name!r}")
+    if not NAME_PATTERN.match(version):
+        raise not_found(f"model {name!r} has no version {version!r}")
     try:
         return reg.get(name, version)
     except UnknownVersion:

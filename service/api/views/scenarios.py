@@ -80,7 +80,7 @@ def scenarios(name: str) -> Response:
     if decoded.problems or check.problems:
         raise unprocessable(
             f"{len(decoded.problems) + check.problem_count} value(s) cannot be scored",
-            [*decoded.problems, *decoded.errors(check.problems)],
+            decoded.refusals(check.problems),
         )
     variants = [
         Variant(
