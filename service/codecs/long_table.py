@@ -66,12 +66,15 @@ class _Problems:
         return tuple(items)
 
 
-def _floats(table: pa.Table, name: str, problems: _Problems) -> tuple[np.ndarray, np.ndarray]:
-    """(values with NaN for nulls, null mask) of a numeric column."""
+def _floats(
+    table: pa.Table, name: str, problems: _Problems
+) -> tuple[np.ndarray, np.ndarray] | None:
+    """(values with NaN for nulls, null mask) of a numeric column; None if not numeric."""
     column = table.column(name)
-    if not (pa.types.is_floating(column.type) or pa.types.is_integer(column.type)):
+    numeric = pa.types.is_floating(column.type) or pa.types.is_integer(column.type)
+    if not (numeric or pa.types.is_null(column.type)):
         problems.whole(name, f"must be a numeric column, not {column.type}")
-        return np.full(len(table), np.nan), np.zeros(len(table), dtype=bool)
+        return None
     column = column.cast(pa.float64())
     nulls = column.is_null().to_numpy(zero_copy_only=False)
     values = column.fill_null(np.nan).to_numpy()
@@ -180,7 +183,10 @@ def batch_from_table(
     for a, attr in enumerate(model.attributes):
         if attr not in table.column_names:
             continue
-        values, nulls = _floats(table, attr, problems)
+        floats = _floats(table, attr, problems)
+        if floats is None:
+            continue
+        values, nulls = floats
         needed = model.required[np.where(good, alt, 0), a] & good & available_row
         problems.rows(needed & nulls, attr, f"is null but the alternative uses {attr}")
         problems.rows(needed & ~nulls & ~np.isfinite(values), attr, "must be a finite number")
@@ -194,12 +200,14 @@ def batch_from_table(
             continue
         if not model.required_context_mask[c]:
             continue  # an unused column is ignored (its cells stay 0)
-        values, nulls = _floats(table, name, problems)
-        z[:, c] = _per_situation(values, nulls, sit, n, first, name, problems)
+        floats = _floats(table, name, problems)
+        if floats is not None:
+            z[:, c] = _per_situation(*floats, sit, n, first, name, problems)
     weights = np.ones(n)
     if "weight" in table.column_names:
-        values, nulls = _floats(table, "weight", problems)
-        weights = _per_situation(values, nulls, sit, n, first, "weight", problems)
+        floats = _floats(table, "weight", problems)
+        if floats is not None:
+            weights = _per_situation(*floats, sit, n, first, "weight", problems)
     batch = Batch(attributes=x, context=z, available=available, weights=weights)
     return ids, batch, problems.result()
 
