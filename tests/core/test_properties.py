@@ -7,7 +7,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
-from service.choice import Batch, Coefficients, compile_model, score, spec_from_dict
+from service.choice import Batch, Coefficients, ScoreOptions, compile_model, score, spec_from_dict
 
 ALTS = ["a", "b", "c", "d", "e"]
 
@@ -89,3 +89,27 @@ def test_nested_logit_with_all_scales_one_equals_multinomial_logit(u, avail):
     # Source: Train 2009, sec. 4.2.1: lambda_k = 1 for all k gives standard logit.
     np.testing.assert_allclose(a.probabilities, b.probabilities, rtol=1e-9, atol=1e-300)
     np.testing.assert_allclose(a.logsum, b.logsum, rtol=1e-12)
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    arrays(np.float64, (3, 5), elements=st.floats(-50, 50)),
+    availability,
+    scales,
+    scales,
+)
+def test_marginal_effects_sum_to_zero_and_match_a_utility_shift(u, avail, l1, l2):
+    m = model("nested", (l1, l2))
+    r = score(m, batch(u, avail), ScoreOptions(elasticities=("u",)))
+    me = r.elasticities["u"].marginal_effect
+    # Source: sum_i P_i = 1 for every x, so sum_i dP_i/dx_j = 0 (common practice).
+    np.testing.assert_allclose(me.sum(axis=1), 0.0, atol=1e-12)
+    # Source: common practice, central difference in u_1 (V_j = u_j).
+    h = 1e-6
+    up, down = u.copy(), u.copy()
+    up[:, 1] += h
+    down[:, 1] -= h
+    fd = (score(m, batch(up, avail)).probabilities - score(m, batch(down, avail)).probabilities) / (
+        2 * h
+    )
+    np.testing.assert_allclose(me[:, :, 1], fd, rtol=1e-5, atol=1e-6)

@@ -141,3 +141,18 @@ def test_scenarios_without_a_valid_cost_effect_still_give_shares(mnl):
     assert out.surplus_change is None and result.surplus_unavailable
     assert out.share_deltas[1] > 0
     assert out.revenue is not None  # revenue needs only a cost attribute
+
+
+def test_scoring_and_scenarios_leave_the_input_batch_untouched(nested):
+    base = commute_batch(nested, 40, seed=9, p_unavailable=0.3)
+    copies = [a.copy() for a in (base.attributes, base.context, base.available, base.weights)]
+    score(nested, base)
+    run_scenarios(
+        nested,
+        base,
+        [Variant("v", changes=(Change("car", "fare", "add", 1.0),), remove=("bus",))],
+    )
+    for before, after in zip(
+        copies, (base.attributes, base.context, base.available, base.weights), strict=True
+    ):
+        np.testing.assert_array_equal(before, after)
