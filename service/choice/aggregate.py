@@ -3,6 +3,8 @@
 Share_i = sum_n w_n P_ni / sum_n w_n;  aggregate elasticity
 E_ij = sum_n w_n P_ni E_nij / sum_n w_n P_ni (0 where alternative i is never chosen with
 positive probability).
+
+Train (2009) section and equation numbers are cited from memory.
 """
 
 from __future__ import annotations

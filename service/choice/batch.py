@@ -52,7 +52,7 @@ class Batch:
         (reported by :func:`check_batch`); unused ones 0.  Unknown names and values of the
         wrong type are reported in ``problems``, their cells left NaN.
         """
-        n, n_j, n_a, n_c = len(situations), *_sizes(model)
+        n, n_j = len(situations), len(model.alternatives)
         x = np.where(model.required, np.nan, 0.0)[None].repeat(n, axis=0)
         z = np.where(model.required_context_mask, np.nan, 0.0)[None].repeat(n, axis=0)
         available = np.ones((n, n_j), dtype=bool)
@@ -117,12 +117,7 @@ class Batch:
                 if w is None:
                     bad(i, "must be a number", "weight")
                 weights[i] = np.nan if w is None else w
-        del n_a, n_c
         return cls(attributes=x, context=z, available=available, weights=weights), tuple(problems)
-
-
-def _sizes(model: CompiledModel) -> tuple[int, int, int]:
-    return len(model.alternatives), len(model.attributes), len(model.context)
 
 
 def _number(value: Any) -> float | None:

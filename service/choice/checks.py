@@ -166,7 +166,8 @@ def _apply_ranges(
     problems: _Collector,
     warnings: _Collector,
 ) -> Batch:
-    """Range policy on used cells (Train-style extrapolation guard; common practice)."""
+    """The spec's range policy on used cells: scoring far outside the data a model was
+    estimated on is extrapolation (common practice to flag it)."""
     policy = model.spec.range_policy
     sink = problems if policy == "reject" else warnings
     x_clips: list[tuple[int, int, float, float]] = []

@@ -7,6 +7,8 @@ Utility (Train 2009, sec. 2.5 and 3.1):  V_j = sum_t beta[k_t] * t(x[j_t, a_t]) 
 Terms of the form beta * x (identity, no context) are folded into a dense block
 ``linear`` (J, A); terms with no attribute and no context into ``constants`` (J,); every
 other term (a transform or a context interaction) is kept in ``general_terms``.
+
+Train (2009) section and equation numbers are cited from memory.
 """
 
 from __future__ import annotations

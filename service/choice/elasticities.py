@@ -2,11 +2,13 @@
 
 With D_ij = d ln P_i / d V_j (:func:`log_probability_derivatives`):
 - attribute a of alternative j:  dP_i/dx_ja = P_i D_ij dV_j/dx_ja,
-  E_ij = D_ij (dV_j/dx_ja) x_ja.  For logit this is Train 2009 eq. 3.7 (own,
+  E_ij = D_ij (dV_j/dx_ja) x_ja.  For logit this is Train 2009 eq. 3.7 (from memory; own,
   beta x_i (1 - P_i)) and eq. 3.8 (cross, -beta x_j P_j) (from memory), for nested
   logit eq. 4.5-4.6 (from memory) in general form;
 - context variable z:  dP_i/dz = P_i sum_j D_ij dV_j/dz,  E_i = z sum_j D_ij dV_j/dz.
 Arrays here are internal (J, J, N) / (J, N); unavailable entries are exactly 0.
+
+Train (2009) section and equation numbers are cited from memory.
 """
 
 from __future__ import annotations

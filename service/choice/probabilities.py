@@ -3,6 +3,8 @@
 All arrays are alternative-major, (J, N).  Unavailable alternatives have utility -inf,
 probability exactly 0 and take no part in any sum.  Every exponent is shifted by its
 maximum (log-sum-exp; common practice), so utilities of +-1e4 neither overflow nor give NaN.
+
+Train (2009) section and equation numbers are cited from memory.
 """
 
 from __future__ import annotations
@@ -39,8 +41,8 @@ class ChoiceState:
 def choice_probabilities(model: CompiledModel, v: np.ndarray, available: np.ndarray) -> ChoiceState:
     """P and logsum from V (J, N) (overwritten) and availability (J, N).
 
-    Multinomial / binary logit (Train 2009, eq. 3.6): P_i = exp V_i / sum_j exp V_j.
-    Nested logit (Train 2009, eq. 4.2): P_i = exp(V_i/l_k) (sum_{j in k} exp(V_j/l_k))^(l_k-1)
+    Multinomial / binary logit (Train 2009, eq. 3.6, from memory): P_i = exp V_i / sum_j exp V_j.
+    Nested logit (Train 2009, eq. 4.2, from memory): P_i = exp(V_i/l_k) (sum_{j in k} exp(V_j/l_k))^(l_k-1)
     / sum_m (sum_{j in m} exp(V_j/l_m))^(l_m), computed as P(k) * P(i | k) (sec. 4.2.3).
     Raises :class:`ScoringError` if a situation has no available alternative or a
     non-finite utility (the batch was not checked).
@@ -110,7 +112,7 @@ def log_probability_derivatives(model: CompiledModel, state: ChoiceState) -> np.
     """D[i, j] = d ln P_i / d V_j, (J, J, N); 0 where i or j is unavailable.
 
     Logit (Train 2009, sec. 3.6): D_ij = delta_ij - P_j.  Nested logit (differentiating
-    eq. 4.2; i in nest k):  D_ij = delta_ij / l_k + [j in k] (1 - 1/l_k) P(j | k) - P_j.
+    eq. 4.2, from memory; i in nest k):  D_ij = delta_ij / l_k + [j in k] (1 - 1/l_k) P(j | k) - P_j.
     """
     p, avail = state.probabilities, state.available
     n_j = p.shape[0]

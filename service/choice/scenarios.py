@@ -4,6 +4,8 @@ For each variant: weighted shares and their change from the base; the change in 
 surplus per situation, Delta CS_n = (logsum_n^1 - logsum_n^0) / alpha_n (compensating
 variation, Train 2009, eq. 3.11, from memory), and its weighted total and mean; expected
 revenue sum_j P_nj cost_nj per situation and weighted in total, where a cost attribute exists.
+
+Train (2009) section and equation numbers are cited from memory.
 """
 
 from __future__ import annotations

@@ -3,6 +3,8 @@
 Public arrays are situation-major ((N, J), (N, J, J)); they are transposed views of the
 core's alternative-major arrays, so a column (one alternative over all situations) is
 contiguous.
+
+Train (2009) section and equation numbers are cited from memory.
 """
 
 from __future__ import annotations

@@ -2,10 +2,12 @@
 
 Probabilities: dP_i/dbeta_k = P_i (sum_j D_ij dV_j/dbeta_k + d ln P_i / d lambda_k), with
 D from :func:`log_probability_derivatives`.  For nested logit, differentiating Train 2009
-eq. 4.2 in the scale lambda_m of nest m (i in nest k, Vbar_m = sum_{j in m} P(j|m) V_j):
+eq. 4.2 (from memory) in the scale lambda_m of nest m (i in nest k, Vbar_m = sum_{j in m} P(j|m) V_j):
   d ln P_i / d lambda_m = [m = k] (-V_i/l^2 + I_m - (l - 1) Vbar_m / l^2)
                           - P(m) (I_m - Vbar_m / l_m).
 Willingness to pay: w_k = -beta_k / beta_cost, grad = (-1/beta_cost, beta_k/beta_cost^2).
+
+Train (2009) section and equation numbers are cited from memory.
 """
 
 from __future__ import annotations

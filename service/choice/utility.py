@@ -2,6 +2,8 @@
 
 V_j = sum_t beta_t * t(x_j) * z  (Train 2009, sec. 3.1).  Alternative-major layout keeps
 every per-alternative row contiguous, so reductions over alternatives are elementwise.
+
+Train (2009) section and equation numbers are cited from memory.
 """
 
 from __future__ import annotations

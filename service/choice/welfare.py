@@ -5,6 +5,8 @@ alpha_n = -dV/d(cost) the marginal utility of income, up to an unknown constant 
 cancels in changes: Delta E(CS_n) = (logsum_n^1 - logsum_n^0) / alpha_n (eq. 3.11, from
 memory).  This needs cost to enter every alternative's utility linearly through the same
 (generic) coefficient(s); context interactions are fine (alpha then varies by situation).
+
+Train (2009) section and equation numbers are cited from memory.
 """
 
 from __future__ import annotations

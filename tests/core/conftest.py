@@ -1,4 +1,7 @@
-"""Invented models of the core's tests: commuters choosing among car, bus, rail and bike."""
+"""Invented models of the core's tests: commuters choosing among car, bus, rail and bike.
+
+Train (2009) section and equation numbers are cited from memory.
+"""
 
 from __future__ import annotations
 

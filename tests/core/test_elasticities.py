@@ -1,4 +1,7 @@
-"""Elasticities and marginal effects: published formulas and finite differences."""
+"""Elasticities and marginal effects: published formulas and finite differences.
+
+Train (2009) section and equation numbers are cited from memory.
+"""
 
 from __future__ import annotations
 

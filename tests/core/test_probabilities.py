@@ -1,4 +1,7 @@
-"""Choice probabilities and logsums against SciPy, published formulas and the RUM itself."""
+"""Choice probabilities and logsums against SciPy, published formulas and the RUM itself.
+
+Train (2009) section and equation numbers are cited from memory.
+"""
 
 from __future__ import annotations
 
@@ -20,7 +23,7 @@ def test_multinomial_probabilities_equal_scipy_softmax(mnl):
     batch = commute_batch(mnl, 500, seed=1, p_unavailable=0.3)
     result = score(mnl, check_batch(mnl, batch).batch)
     v = masked(reference_utilities(mnl, batch), batch.available)
-    # Source: scipy.special.softmax of the utilities (Train 2009, eq. 3.6).
+    # Source: scipy.special.softmax of the utilities (Train 2009, eq. 3.6, from memory).
     np.testing.assert_allclose(result.probabilities, special.softmax(v, axis=1), rtol=1e-12)
     # Source: scipy.special.logsumexp (the logsum, Train 2009 sec. 3.5).
     np.testing.assert_allclose(result.logsum, special.logsumexp(v, axis=1), rtol=1e-12)
@@ -76,7 +79,7 @@ def test_binary_logit_is_the_logistic_cdf_of_the_utility_difference():
 
 
 def nested_reference(v: np.ndarray, avail: np.ndarray, nests, lam) -> np.ndarray:
-    """Train 2009, eq. 4.2 written out literally (with availability)."""
+    """Train 2009, eq. 4.2 (from memory) written out literally (with availability)."""
     e = np.where(avail, np.exp(v), 0.0)
     p = np.zeros_like(v)
     sums = [np.sum(e[:, m] ** (1 / lam[k]), axis=1) for k, m in enumerate(nests)]
@@ -95,7 +98,7 @@ def test_nested_logit_probabilities_follow_the_closed_form(nested):
     v = reference_utilities(nested, batch)
     # car, bike | bus, rail with lambda 0.7 and 0.45 (the model's nests).
     p, ls = nested_reference(v, batch.available, [[0, 3], [1, 2]], [0.7, 0.45])
-    # Source: Train 2009, eq. 4.2; logsum = ln sum_k (sum_{j in k} e^{V_j/l_k})^{l_k}
+    # Source: Train 2009, eq. 4.2 (from memory); logsum = ln sum_k (sum_{j in k} e^{V_j/l_k})^{l_k}
     # (Train 2009, sec. 4.2.3, eq. 4.7 from memory).
     np.testing.assert_allclose(result.probabilities, p, rtol=1e-11)
     np.testing.assert_allclose(result.logsum, ls, rtol=1e-11)

@@ -1,4 +1,7 @@
-"""Properties of logit probabilities that hold for every input (hypothesis)."""
+"""Properties of logit probabilities that hold for every input (hypothesis).
+
+Train (2009) section and equation numbers are cited from memory.
+"""
 
 from __future__ import annotations
 

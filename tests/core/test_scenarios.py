@@ -1,4 +1,7 @@
-"""What-if scenarios: shares, share changes, surplus changes and revenue."""
+"""What-if scenarios: shares, share changes, surplus changes and revenue.
+
+Train (2009) section and equation numbers are cited from memory.
+"""
 
 from __future__ import annotations
 
@@ -49,7 +52,7 @@ def test_removing_an_alternative_in_logit_rescales_the_others_and_costs_ln_one_m
     result = run_scenarios(model, base, [Variant("no c", remove=("c",))])
     p = score(model, base).probabilities
     w = base.weights
-    # Source: IIA (Train 2009, sec. 3.3.2): P_j' = P_j / (1 - P_c); from eq. 3.6 and 3.10
+    # Source: IIA (Train 2009, sec. 3.3.2): P_j' = P_j / (1 - P_c); from eq. 3.6 and 3.10 (from memory)
     # the logsum falls by -ln(1 - P_c), so Delta CS = ln(1 - P_c) / alpha.
     p_new = np.where(np.arange(4) == 2, 0.0, p / (1 - p[:, [2]]))
     np.testing.assert_allclose(result.variants[0].shares, (w @ p_new) / w.sum(), rtol=1e-12)

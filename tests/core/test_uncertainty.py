@@ -1,4 +1,7 @@
-"""Delta-method standard errors of probabilities and willingness-to-pay ratios."""
+"""Delta-method standard errors of probabilities and willingness-to-pay ratios.
+
+Train (2009) section and equation numbers are cited from memory.
+"""
 
 from __future__ import annotations
 

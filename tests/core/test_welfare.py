@@ -1,4 +1,7 @@
-"""Consumer surplus in money units, and when it is refused."""
+"""Consumer surplus in money units, and when it is refused.
+
+Train (2009) section and equation numbers are cited from memory.
+"""
 
 from __future__ import annotations
 
