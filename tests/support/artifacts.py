@@ -150,12 +150,14 @@ def parquet_with_pickled_extension(marker: str) -> bytes:
     return sink.getvalue()
 
 
-def force_routing(store: Store, live: Mapping[str, float], reason: str = "forced") -> int:
+def force_routing(
+    store: Store, live: Mapping[str, float], reason: str = "forced", model: str = MODEL
+) -> int:
     """Write the next routing record directly (no validation): what a buggy or hostile writer
     could leave in the store.  Returns its generation."""
-    generation = store.routing_generation(MODEL) + 1
+    generation = store.routing_generation(model) + 1
     state = RoutingState(
-        model=MODEL,
+        model=model,
         generation=generation,
         live=dict(live),
         previous_generation=generation - 1,
@@ -164,7 +166,7 @@ def force_routing(store: Store, live: Mapping[str, float], reason: str = "forced
         changed_at="2026-01-01T00:00:00Z",
         reason=reason,
     )
-    store.backend.put(record_key(MODEL, generation), encode(state))
+    store.backend.put(record_key(model, generation), encode(state))
     return generation
 
 
@@ -173,3 +175,27 @@ def manifest_of(store: Store, version: str) -> dict[str, Any]:
 
 
 COEFFICIENTS_FILE = COEFFICIENTS
+
+
+def plant_version(
+    store: Store, model: str, source: str, target: str, *, data: bytes, manifest: bool = True
+) -> None:
+    """Write ``target`` as a copy of ``source`` whose coefficients file holds ``data``.
+
+    The manifest (renamed to ``target``) keeps ``source``'s checksums, so ``data`` other than
+    the original bytes makes a corrupt version; ``manifest=False`` leaves only the data file,
+    as an interrupted publish would.  Covariance files are copied unchanged.
+    """
+    src, dst = _prefix(model, source), _prefix(model, target)
+    body = json.loads(store.backend.get(src + MANIFEST))
+    for name in body["files"]:
+        store.backend.put(
+            dst + name, data if name == COEFFICIENTS else store.backend.get(src + name)
+        )
+    if manifest:
+        body["version"] = target
+        store.backend.put(dst + MANIFEST, manifest_bytes(body))
+
+
+def original_coefficients(store: Store, model: str, version: str) -> bytes:
+    return store.backend.get(_prefix(model, version) + COEFFICIENTS)
