@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from service.choice import Batch, BatchProblem, ScoringError, check_batch, score
+from service.choice import Batch, BatchProblem, ScoreOptions, ScoringError, check_batch, score
 from tests.core.conftest import commute_batch, commute_model, commute_spec, model_from
 
 
@@ -153,3 +153,15 @@ def test_range_policy(policy):
         assert check.batch is batch
     if policy == "warn":
         assert check.ok and "outside" in check.warnings[0].message
+
+
+def test_scoring_an_unchecked_empty_or_weightless_batch_refuses(mnl):
+    empty = commute_batch(mnl, 0)
+    assert check_batch(mnl, empty).problems[0].field == ("situations",)
+    with pytest.raises(ScoringError):
+        score(mnl, empty)
+    weightless = commute_batch(mnl, 3)
+    weightless.weights[:] = 0.0
+    with pytest.raises(ScoringError) as err:
+        score(mnl, weightless, ScoreOptions(aggregate=True))
+    assert err.value.problems[0].path == "weights"
