@@ -55,3 +55,19 @@ def logit_shares(v: np.ndarray, weights: np.ndarray) -> np.ndarray:
     e = np.exp(v - v.max(axis=1, keepdims=True))
     p = e / e.sum(axis=1, keepdims=True)
     return weights @ p / weights.sum()
+
+
+def publish(cli, files, version, coefficients=None, *extra):
+    return cli(
+        "publish",
+        str(files["spec"]),
+        "--coefficients",
+        str(coefficients or files["coefficients"]),
+        "--covariance",
+        str(files["covariance"]),
+        "--version",
+        version,
+        "--by",
+        "ana",
+        *extra,
+    )

@@ -7,26 +7,10 @@ import json
 
 import numpy as np
 import pytest
-from cli_cases import ALTS, ferry_population, ferry_utilities, logit_shares
+from cli_cases import ALTS, ferry_population, ferry_utilities, logit_shares, publish
 
 from model_store import open_store
 from tests.store.store_cases import FERRY_NAMES, ferry_coefficients
-
-
-def publish(cli, files, version, coefficients=None, *extra):
-    return cli(
-        "publish",
-        str(files["spec"]),
-        "--coefficients",
-        str(coefficients or files["coefficients"]),
-        "--covariance",
-        str(files["covariance"]),
-        "--version",
-        version,
-        "--by",
-        "ana",
-        *extra,
-    )
 
 
 def test_validate_prints_the_model_and_writes_nothing(cli, ferry_files, tmp_path):
