@@ -40,10 +40,22 @@ class JsonFormatter(logging.Formatter):
         return json.dumps(entry, separators=(",", ":"))
 
 
+class StdoutHandler(logging.StreamHandler):
+    """Writes to whatever ``sys.stdout`` is at the time (one JSON object per line)."""
+
+    @property  # type: ignore[override]
+    def stream(self):
+        return sys.stdout
+
+    @stream.setter
+    def stream(self, value) -> None:
+        pass
+
+
 def configure_logging(level: str) -> None:
     root = logging.getLogger("choicecast")
     if not any(getattr(h, "_choicecast", False) for h in root.handlers):
-        handler = logging.StreamHandler(sys.stdout)
+        handler = StdoutHandler()
         handler.setFormatter(JsonFormatter())
         handler._choicecast = True  # type: ignore[attr-defined]
         root.addHandler(handler)

@@ -175,6 +175,7 @@ class Registry:
         with self._refresh_lock:
             old = self.snapshot
             try:
+                self.store.check()
                 # One listing gives every model and its routing generation (a cheap poll).
                 generations = {str(m): int(g) for m, g in self.store.generations().items()}
             except Exception as exc:
@@ -216,6 +217,11 @@ class Registry:
                     new = ModelRouting(new.generation, new.live, None)
                 routes[name] = new
                 metrics.ROUTING_GENERATION.labels(name).set(new.generation)
+            for name in sorted(set(old.routes) - set(names)):
+                # A routed model missing from the listing: keep serving it, report it.
+                problems.append(f"{name}: no longer listed by the store; serving the last state")
+                routes[name] = old.routes[name]
+                names = (*names, name)
             self.snapshot = Snapshot(
                 routes=routes, models=names, problems=tuple(problems), refreshed_at=time.time()
             )

@@ -412,6 +412,7 @@ class VersionDetailSchema(Schema):
     version = fields.String(required=True)
     spec = fields.Dict(required=True)
     coefficients = fields.List(fields.Dict(), required=True)
+    has_covariance = fields.Boolean(required=True)
     manifest = fields.Dict(allow_none=True)
 
 

@@ -31,7 +31,9 @@ def score_json(server, body: dict, path: str = "/v1/models/harbour/score") -> re
 
 
 def wait_generation(server, generation: int, seconds: float = 15.0) -> None:
-    """Until 20 responses in a row (over both workers) report ``generation``."""
+    """Until 20 responses in a row report ``generation``, after three poll intervals (0.3 s
+    each), by which every worker has polled: one worker may serve all 20."""
+    time.sleep(1.0)
     deadline = time.monotonic() + seconds
     streak = 0
     while time.monotonic() < deadline and streak < 20:
