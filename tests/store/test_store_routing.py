@@ -5,9 +5,11 @@ from __future__ import annotations
 
 import json
 import multiprocessing
+import multiprocessing.forkserver
 import threading
 
 import pytest
+from race_worker import race
 from store_cases import publish_ferry, raw_get, raw_put, reopen
 
 from model_store import NotFound, RoutingConflict, RoutingError, Store, open_store
@@ -151,18 +153,6 @@ def test_routing_survives_reopening_the_store(ferry: Store):
     assert reopen(ferry).get_routing("ferry") == ferry.get_routing("ferry")
 
 
-def _race(root: str, version: str, base: int, barrier, results) -> None:
-    store = open_store(root)
-    barrier.wait(timeout=20)
-    try:
-        store.change_routing(
-            "ferry", {version: 1}, reason="race", changed_by=version, expected_generation=base
-        )
-        results.put("won")
-    except RoutingConflict:
-        results.put("conflict")
-
-
 def test_concurrent_changes_in_separate_processes_one_wins(tmp_path):
     """Real concurrency on the filesystem backend: several processes write from the same base;
     exactly one create succeeds (link(2) is exclusive), the rest are refused."""
@@ -170,18 +160,28 @@ def test_concurrent_changes_in_separate_processes_one_wins(tmp_path):
     store = open_store(root)
     for v in ("v1", "v2", "v3", "v4"):
         publish_ferry(store, v)
-    ctx = multiprocessing.get_context("spawn")
+    ctx = multiprocessing.get_context("forkserver")
+    ctx.set_forkserver_preload(["race_worker"])
     barrier, results = ctx.Barrier(4), ctx.Queue()
     procs = [
-        ctx.Process(target=_race, args=(root, v, 0, barrier, results))
+        ctx.Process(target=race, args=(root, v, 0, barrier, results))
         for v in ("v1", "v2", "v3", "v4")
     ]
-    for p in procs:
-        p.start()
-    for p in procs:
-        p.join(timeout=60)
-    assert all(p.exitcode == 0 for p in procs)
-    outcomes = sorted(results.get(timeout=5) for _ in procs)
+    try:
+        for p in procs:
+            p.start()
+        for p in procs:
+            p.join(timeout=60)
+        assert all(p.exitcode == 0 for p in procs)
+        outcomes = sorted(results.get(timeout=5) for _ in procs)
+    finally:
+        for p in procs:
+            if p.is_alive():
+                p.kill()
+                p.join(timeout=10)
+        stop = getattr(multiprocessing.forkserver._forkserver, "_stop", None)
+        if stop is not None:
+            stop()  # the fork server process ends with this test, not with the session
     assert outcomes == ["conflict", "conflict", "conflict", "won"]
     assert [s.generation for s in store.history("ferry")] == [1]
 
