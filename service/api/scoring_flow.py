@@ -36,6 +36,10 @@ from .schemas import ArrowQuerySchema, OutputsSchema, ScoreRequestSchema
 log = logging.getLogger("choicecast.scoring")
 
 JSON = "application/json"
+# Schema instances are reused: building one deep-copies its fields (about 1 ms each).
+SCORE_REQUEST = ScoreRequestSchema()
+DEFAULT_OUTPUTS = OutputsSchema().load({})
+ARROW_QUERY = ArrowQuerySchema()
 
 
 @dataclass(frozen=True, eq=False)
@@ -92,8 +96,8 @@ def parse_score_request() -> ParsedRequest:
         return _parse_arrow()
     data = read_json()
     check_size(situation_count(data), settings().max_situations)
-    loaded = ScoreRequestSchema().load(data) if isinstance(data, dict) else _not_object()
-    outputs = loaded.get("outputs") or OutputsSchema().load({})
+    loaded = SCORE_REQUEST.load(data) if isinstance(data, dict) else _not_object()
+    outputs = loaded.get("outputs") or DEFAULT_OUTPUTS
     if "situations" in loaded:
         return ParsedRequest("rows", loaded["situations"], outputs, loaded.get("routing_key"))
     check_size(column_length(loaded["columns"]), settings().max_situations)
@@ -108,7 +112,7 @@ def _parse_arrow() -> ParsedRequest:
     import pyarrow as pa
 
     try:
-        query = ArrowQuerySchema().load(request.args.to_dict())
+        query = ARROW_QUERY.load(request.args.to_dict())
     except ValidationError as exc:
         raise bad_request(
             "the query parameters are not valid", marshmallow_errors(exc.messages, "query")

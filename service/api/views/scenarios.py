@@ -26,6 +26,7 @@ from .models import load
 from .scoring import choose
 
 blueprint = Blueprint("scenarios", __name__)
+SCENARIO_REQUEST = ScenarioRequestSchema()
 
 
 def _finite(value: float | None) -> float | None:
@@ -64,7 +65,7 @@ def scenarios(name: str) -> Response:
         raise bad_request("the body must be a JSON object", [FieldError("$", "must be an object")])
     limit = settings().max_situations
     check_size(situation_count(data), limit)
-    body = ScenarioRequestSchema().load(data)
+    body = SCENARIO_REQUEST.load(data)
     decision, generation, _ = choose(name, body.get("version"), body.get("routing_key"))
     loaded = load(name, decision.version)
     g.version, g.decision, g.generation = loaded.version, decision.decision, generation

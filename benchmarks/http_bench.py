@@ -1,0 +1,365 @@
+"""HTTP benchmark: the service under gunicorn against an empty Flask JSON endpoint, and the
+per-situation cost of JSON rows, JSON columns and Arrow at 10k and 100k situations.
+
+    .venv/bin/python benchmarks/http_bench.py            # figures to docs/benchmarks.md
+    .venv/bin/python benchmarks/http_bench.py --quick    # shorter, prints only
+
+Everything runs on 127.0.0.1 with the project's gunicorn config (deploy/gunicorn.conf.py,
+2 sync workers); each server is stopped when its part is done.  The load generator is a few
+threads with http.client, each sending requests back to back for a fixed time.
+"""
+
+from __future__ import annotations
+
+import argparse
+import http.client
+import json
+import os
+import platform
+import re
+import signal
+import socket
+import statistics
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+from flask import Flask, jsonify, request
+
+REPO = Path(__file__).resolve().parents[1]
+DOC = REPO / "docs" / "benchmarks.md"
+BEGIN, END = "<!-- http:begin -->", "<!-- http:end -->"
+MODEL = "wrenmouth_commute"
+ALTERNATIVES = ("car", "tram", "bicycle", "walk")
+ARROW = "application/vnd.apache.arrow.stream"
+
+# The empty endpoint the service is compared with (served by the same gunicorn config).
+empty_app = Flask("empty")
+
+
+@empty_app.post("/empty")
+def empty() -> object:
+    request.get_json()
+    return jsonify({"ok": True})
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def wait_ready(port: int, path: str, process: subprocess.Popen, seconds: float = 60) -> None:
+    deadline = time.monotonic() + seconds
+    while time.monotonic() < deadline:
+        if process.poll() is not None:
+            raise RuntimeError(f"server exited with {process.returncode}")
+        try:
+            conn = http.client.HTTPConnection("127.0.0.1", port, timeout=2)
+            conn.request("GET", path)
+            if conn.getresponse().status in (200, 405):
+                return
+        except OSError:
+            time.sleep(0.1)
+    raise RuntimeError("server did not become ready")
+
+
+@contextmanager
+def serve(argv: list[str], port: int, ready_path: str, env: dict[str, str]) -> Iterator[int]:
+    process = subprocess.Popen(
+        argv, cwd=REPO, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+        start_new_session=True,
+    )  # fmt: skip
+    try:
+        wait_ready(port, ready_path, process)
+        yield process.pid
+    finally:
+        process.send_signal(signal.SIGTERM)
+        try:
+            process.wait(timeout=20)
+        except subprocess.TimeoutExpired:
+            os.killpg(process.pid, signal.SIGKILL)
+            process.wait(timeout=5)
+
+
+def service(store: str, port: int, workers: int = 2):
+    env = {**os.environ, "CHOICECAST_POLL_SECONDS": "5"}
+    for key in ("CHOICECAST_SCORE_TOKENS", "CHOICECAST_ADMIN_TOKENS", "CHOICECAST_TOKENS_FILE"):
+        env.pop(key, None)
+    env.pop("PROMETHEUS_MULTIPROC_DIR", None)
+    argv = [str(Path(sys.executable).with_name("choicecast")), "serve", "--store", store,
+            "--host", "127.0.0.1", "--port", str(port), "--workers", str(workers)]  # fmt: skip
+    return serve(argv, port, "/readyz", env)
+
+
+def empty_server(port: int):
+    argv = [sys.executable, "-m", "gunicorn", "--config", str(REPO / "deploy" / "gunicorn.conf.py"),
+            "--bind", f"127.0.0.1:{port}", "--workers", "2", "benchmarks.http_bench:empty_app"]  # fmt: skip
+    env = {**os.environ, "PYTHONPATH": str(REPO)}
+    return serve(argv, port, "/empty", env)
+
+
+def situations(n: int, seed: int = 1) -> list[dict]:
+    """Invented commuting situations within the demo model's estimation ranges."""
+    rng = np.random.default_rng(seed)
+    cost = rng.uniform(0.5, 12.0, (n, 4)).round(2)
+    minutes = rng.uniform(4.0, 80.0, (n, 4)).round(1)
+    age = rng.uniform(18, 80, n).round()
+    rain = rng.uniform(0, 20, n).round(1)
+    out = []
+    for i in range(n):
+        attrs = {
+            a: {"cost": float(cost[i, j]), "minutes": float(minutes[i, j])}
+            for j, a in enumerate(ALTERNATIVES)
+        }
+        out.append({"id": f"s{i}", "attributes": attrs,
+                    "context": {"age": float(age[i]), "rain_mm": float(rain[i])}})  # fmt: skip
+    return out
+
+
+def columns_of(rows: list[dict]) -> dict:
+    return {
+        "id": [s["id"] for s in rows],
+        "attributes": {
+            a: {k: [s["attributes"][a][k] for s in rows] for k in ("cost", "minutes")}
+            for a in ALTERNATIVES
+        },
+        "context": {k: [s["context"][k] for s in rows] for k in ("age", "rain_mm")},
+    }
+
+
+def arrow_of(rows: list[dict]) -> bytes:
+    n = len(rows)
+    table = pa.table(
+        {
+            "situation": np.repeat([s["id"] for s in rows], 4),
+            "alternative": np.tile(ALTERNATIVES, n),
+            "cost": [s["attributes"][a]["cost"] for s in rows for a in ALTERNATIVES],
+            "minutes": [s["attributes"][a]["minutes"] for s in rows for a in ALTERNATIVES],
+            "age": np.repeat([s["context"]["age"] for s in rows], 4),
+            "rain_mm": np.repeat([s["context"]["rain_mm"] for s in rows], 4),
+        }
+    )
+    sink = pa.BufferOutputStream()
+    with pa.ipc.new_stream(sink, table.schema) as writer:
+        writer.write_table(table)
+    return sink.getvalue().to_pybytes()
+
+
+def post(
+    port: int, path: str, body: bytes, content_type: str, timeout: float = 120
+) -> tuple[int, bytes]:
+    conn = http.client.HTTPConnection("127.0.0.1", port, timeout=timeout)
+    try:
+        conn.request("POST", path, body=body, headers={"Content-Type": content_type})
+        response = conn.getresponse()
+        return response.status, response.read()
+    finally:
+        conn.close()
+
+
+def load(port: int, path: str, body: bytes, seconds: float, threads: int) -> dict[str, float]:
+    """Back-to-back requests from ``threads`` threads for ``seconds``: rate and latencies."""
+    latencies: list[float] = []
+    errors = [0]
+    stop = time.monotonic() + seconds
+    lock = threading.Lock()
+
+    def worker() -> None:
+        mine: list[float] = []
+        bad = 0
+        while time.monotonic() < stop:
+            started = time.perf_counter()
+            status, _ = post(port, path, body, "application/json", timeout=10)
+            mine.append(time.perf_counter() - started)
+            bad += status != 200
+        with lock:
+            latencies.extend(mine)
+            errors[0] += bad
+
+    started = time.monotonic()
+    pool = [threading.Thread(target=worker) for _ in range(threads)]
+    for t in pool:
+        t.start()
+    for t in pool:
+        t.join()
+    elapsed = time.monotonic() - started
+    lat = np.array(latencies) * 1000
+    return {
+        "requests": len(lat),
+        "errors": errors[0],
+        "rps": len(lat) / elapsed,
+        "p50_ms": float(np.percentile(lat, 50)),
+        "p99_ms": float(np.percentile(lat, 99)),
+    }
+
+
+def worker_pids(master: int) -> list[int]:
+    path = Path(f"/proc/{master}/task/{master}/children")
+    return [int(p) for p in path.read_text().split()] if path.exists() else []
+
+
+def peak_rss_mb(pids: list[int]) -> float:
+    """Largest VmHWM (peak resident set) among ``pids``, in MiB."""
+    peak = 0
+    for pid in pids:
+        text = Path(f"/proc/{pid}/status").read_text()
+        peak = max(peak, int(re.search(r"VmHWM:\s+(\d+) kB", text).group(1)))
+    return peak / 1024
+
+
+def timed(port: int, path: str, body: bytes, content_type: str, repeats: int) -> float:
+    """Median wall time of one request (seconds); every answer must be 200."""
+    times = []
+    for _ in range(repeats):
+        started = time.perf_counter()
+        status, data = post(port, path, body, content_type)
+        times.append(time.perf_counter() - started)
+        if status != 200:
+            raise RuntimeError(f"{path} answered {status}: {data[:300]!r}")
+    return statistics.median(times)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="short run; do not write the doc")
+    parser.add_argument("--seconds", type=float, default=8.0, help="load duration per endpoint")
+    parser.add_argument("--threads", type=int, default=4, help="concurrent connections")
+    args = parser.parse_args()
+    seconds = 2.0 if args.quick else args.seconds
+    sizes = (10_000,) if args.quick else (10_000, 100_000)
+    repeats = 1 if args.quick else 3
+
+    tmp = Path(tempfile.mkdtemp(prefix="choicecast-bench-"))
+    store = str(tmp / "store")
+    subprocess.run(
+        [str(Path(sys.executable).with_name("choicecast")), "demo", "--store", store,
+         "--populations", str(tmp / "populations")],
+        check=True, stdout=subprocess.DEVNULL,
+    )  # fmt: skip
+
+    one = json.dumps({"situations": situations(1)}).encode()
+    routed = f"/v1/models/{MODEL}/score"
+    pinned = f"/v1/models/{MODEL}/versions/v1/score"
+
+    port = free_port()
+    with empty_server(port):
+        load(port, "/empty", one, 1.0, args.threads)  # warm-up
+        empty_stats = load(port, "/empty", one, seconds, args.threads)
+    port = free_port()
+    with service(store, port):
+        load(port, routed, one, 1.0, args.threads)
+        service_stats = load(port, routed, one, seconds, args.threads)
+
+    batch: dict[tuple[str, int], dict[str, float]] = {}
+    for n in sizes:
+        rows = situations(n, seed=n)
+        bodies = {
+            "JSON rows": (json.dumps({"situations": rows}).encode(), "application/json"),
+            "JSON columns": (
+                json.dumps({"columns": columns_of(rows)}).encode(),
+                "application/json",
+            ),
+            "Arrow IPC": (arrow_of(rows), ARROW),
+        }
+        port = free_port()
+        with service(store, port):
+            for form, (body, ctype) in bodies.items():
+                timed(port, pinned, body, ctype, 1)  # warm-up (and a check of the answer)
+                seconds_per_request = timed(port, pinned, body, ctype, repeats)
+                batch[(form, n)] = {
+                    "bytes": len(body),
+                    "seconds": seconds_per_request,
+                    "us_per_situation": seconds_per_request / n * 1e6,
+                }
+    peak: dict[str, float] = {}
+    n_peak = sizes[-1]
+    rows = situations(n_peak, seed=n_peak)
+    for form, (body, ctype) in {
+        "JSON rows": (json.dumps({"situations": rows}).encode(), "application/json"),
+        "JSON columns": (json.dumps({"columns": columns_of(rows)}).encode(), "application/json"),
+        "Arrow IPC": (arrow_of(rows), ARROW),
+    }.items():
+        port = free_port()
+        with service(store, port, workers=1) as master:
+            pids = worker_pids(master)
+            idle = peak_rss_mb(pids)
+            timed(port, pinned, body, ctype, 1)
+            peak[form] = peak_rss_mb(pids)
+            peak[f"{form} idle"] = idle
+
+    ratio = service_stats["rps"] / empty_stats["rps"]
+    lines = [
+        "## HTTP service",
+        "",
+        "Command: `.venv/bin/python benchmarks/http_bench.py` (one run; "
+        f"{time.strftime('%Y-%m-%d', time.gmtime())}, {platform.python_version()}, "
+        f"{os.cpu_count()} cores). Both servers use deploy/gunicorn.conf.py with 2 sync workers "
+        f"on 127.0.0.1; the load generator (same machine, so it shares the 2 cores) is "
+        f"{args.threads} threads sending requests back to back for {seconds:g} s with "
+        "http.client (sync workers close each connection). Model: demo `wrenmouth_commute` "
+        "(4 alternatives, 2 attributes, 2 context variables).",
+        "",
+        "### One situation vs an empty Flask JSON endpoint",
+        "",
+        "| endpoint | requests/s | p50 ms | p99 ms | errors |",
+        "| --- | ---: | ---: | ---: | ---: |",
+        f"| empty Flask JSON endpoint (POST, parses the same body) | {empty_stats['rps']:.0f} "
+        f"| {empty_stats['p50_ms']:.2f} | {empty_stats['p99_ms']:.2f} | {empty_stats['errors']} |",
+        f"| `POST {routed}` (routed, probabilities, access log on) | {service_stats['rps']:.0f} "
+        f"| {service_stats['p50_ms']:.2f} | {service_stats['p99_ms']:.2f} | {service_stats['errors']} |",
+        "",
+        f"Throughput ratio service / empty endpoint: **{ratio:.2f}** (target >= 0.7).",
+        "",
+        "### Per-situation cost of a batch (pinned version, probabilities)",
+        "",
+        "Median of 3 requests, wall time at the client (upload, parse, check, score, encode, download).",
+        "",
+        "| form | situations | body MB | seconds | us / situation | vs Arrow |",
+        "| --- | ---: | ---: | ---: | ---: | ---: |",
+    ]
+    for n in sizes:
+        arrow_cost = batch[("Arrow IPC", n)]["us_per_situation"]
+        for form in ("JSON rows", "JSON columns", "Arrow IPC"):
+            b = batch[(form, n)]
+            lines.append(
+                f"| {form} | {n:,} | {b['bytes'] / 1e6:.1f} | {b['seconds']:.3f} "
+                f"| {b['us_per_situation']:.2f} | {b['us_per_situation'] / arrow_cost:.1f}x |"
+            )
+    lines += [
+        "",
+        f"### Peak memory of one {n_peak:,}-situation request",
+        "",
+        "A fresh 1-worker server per form; peak resident set (VmHWM) of the worker.",
+        "",
+        "| form | idle worker MiB | peak MiB |",
+        "| --- | ---: | ---: |",
+    ]
+    for form in ("JSON rows", "JSON columns", "Arrow IPC"):
+        lines.append(f"| {form} | {peak[f'{form} idle']:.0f} | {peak[form]:.0f} |")
+    text = "\n".join(lines) + "\n"
+    print(text)
+    if not args.quick:
+        write_section(text)
+
+
+def write_section(text: str) -> None:
+    doc = DOC.read_text() if DOC.exists() else "# Benchmarks\n"
+    if BEGIN in doc and END in doc:
+        head, rest = doc.split(BEGIN, 1)
+        _, tail = rest.split(END, 1)
+        doc = f"{head}{BEGIN}\n{text}{END}{tail}"
+    else:
+        doc = f"{doc.rstrip()}\n\n{BEGIN}\n{text}{END}\n"
+    DOC.write_text(doc)
+
+
+if __name__ == "__main__":
+    main()
