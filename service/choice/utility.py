@@ -13,6 +13,10 @@ import numpy as np
 from service.choice.batch import Batch
 from service.choice.compiled import IDENTITY, LOG, NONE, CompiledModel, TermArrays
 
+CHUNK_BYTES = 2**21
+"""Rows of the attribute array are multiplied in blocks of about this size, so that each
+block is read from memory once and then from cache for every alternative."""
+
 
 def transform(code: int, x: np.ndarray) -> np.ndarray:
     """t(x) for identity / log / log1p.  Outside the domain (only ever in cells of an
@@ -33,15 +37,18 @@ def transform_slope(code: int, x: np.ndarray) -> np.ndarray:
 
 
 def utilities(model: CompiledModel, batch: Batch) -> np.ndarray:
-    """V (J, N).  The dense linear block is one matrix-vector product per alternative;
-    transformed and context terms are added one term at a time over the whole batch."""
+    """V (J, N).  The dense linear block is a stacked matrix-vector product (one per
+    alternative) over cache-sized blocks of rows; transformed and context terms are added
+    one term at a time over the whole batch."""
     x, z = batch.attributes, batch.context
-    n_j = len(model.alternatives)
-    v = np.empty((n_j, batch.size))
-    for j in range(n_j):
-        np.matmul(x[:, j, :], model.linear[j], out=v[j])
-        if model.constants[j]:
-            v[j] += model.constants[j]
+    n_j, n = len(model.alternatives), batch.size
+    v = np.empty((n_j, n))
+    weights = model.linear[:, :, None]
+    step = max(256, CHUNK_BYTES // max(1, x.shape[1] * x.shape[2] * x.itemsize))
+    for start in range(0, n, step):
+        stop = min(n, start + step)
+        np.matmul(x[start:stop].transpose(1, 0, 2), weights, out=v[:, start:stop, None])
+    v += model.constants[:, None]
     g = model.general_terms
     for t in range(len(g)):
         v[g.alternative[t]] += model.beta[g.coefficient[t]] * _feature(g, t, x, z)
