@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import logging
+import struct
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -13,12 +14,14 @@ from flask import request
 from marshmallow import ValidationError
 
 from service.choice import BatchCheck, ScoreOptions, ScoreResult, ScoringError, check_batch, score
+from service.choice.checks import MAX_REPORTED
 
 from . import metrics
 from .codecs.arrow import MEDIA_TYPE as ARROW
 from .codecs.arrow import decode_arrow
 from .codecs.columns import column_length, decode_columns
 from .codecs.decoded import Decoded
+from .codecs.ipc_limits import decoded_body_size, dictionary_expansion
 from .codecs.results import Outputs, require_finite
 from .codecs.rows import decode_rows
 from .context import settings
@@ -62,13 +65,23 @@ def read_json() -> Any:
         raise unsupported_media_type(
             f"send {JSON} or {ARROW}, not {request.mimetype or 'no content type'!r}"
         )
-    raw = request.get_data(cache=False)
+    raw = read_body()
     try:
         return json.loads(raw)
     except (ValueError, RecursionError) as exc:
         raise bad_request(
             f"the body is not valid JSON: {exc}", [FieldError("$", "invalid JSON")]
         ) from None
+
+
+def read_body() -> bytes:
+    """The whole body.  werkzeug stops reading a chunked body at max_content_length without
+    saying so; one more byte read then raises its 413 instead of passing on a truncated body."""
+    raw = request.get_data(cache=False)
+    limit = request.max_content_length
+    if limit is not None and len(raw) >= limit:
+        request.stream.read(1)
+    return raw
 
 
 def situation_count(data: Any) -> int:
@@ -117,14 +130,23 @@ def _parse_arrow() -> ParsedRequest:
         raise bad_request(
             "the query parameters are not valid", marshmallow_errors(exc.messages, "query")
         ) from None
-    raw = request.get_data(cache=False)
+    raw = read_body()
+    limit = settings().max_body_bytes
     try:
-        table = pa.ipc.open_stream(raw).read_all()
-    except (pa.ArrowInvalid, pa.ArrowException, OSError, ValueError) as exc:
+        decoded_size = decoded_body_size(raw)
+        if decoded_size <= limit:
+            table = pa.ipc.open_stream(raw).read_all()
+    except (pa.ArrowInvalid, pa.ArrowException, OSError, ValueError, struct.error) as exc:
         raise bad_request(
             f"the body is not an Arrow IPC stream: {exc}",
             [FieldError("$", "invalid Arrow IPC stream")],
         ) from None
+    if decoded_size > limit or dictionary_expansion(table) > limit:
+        raise too_large(
+            f"the Arrow stream decodes to more than the configured limit of {limit} bytes "
+            "(max_body_bytes; compressed buffers and dictionary columns count decoded)",
+            [FieldError("$", "decodes to too many bytes")],
+        )
     outputs = {k: v for k, v in query.items() if k != "routing_key"}
     outputs["elasticities"] = [e.strip() for e in query["elasticities"].split(",") if e.strip()]
     return ParsedRequest("arrow", table, outputs, query.get("routing_key"))
@@ -155,12 +177,10 @@ def run_score(
     check = check_batch(model, decoded.batch)
     if check.problems or decoded.problems:
         count = check.problem_count + len(decoded.problems)
-        omitted = check.problem_count - len(check.problems)
+        listed = decoded.refusals(check.problems)[:MAX_REPORTED]
+        omitted = count - len(listed)
         more = f" ({omitted} more not listed)" if omitted > 0 else ""
-        raise unprocessable(
-            f"{count} value(s) cannot be scored{more}",
-            decoded.refusals(check.problems),
-        )
+        raise unprocessable(f"{count} value(s) cannot be scored{more}", listed)
     options = ScoreOptions(
         probabilities=True,
         logsum=outputs.logsum or outputs.expected_max_utility,

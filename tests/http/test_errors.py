@@ -231,3 +231,21 @@ def test_unexpected_errors_are_a_500_problem_without_traceback(store_uri, monkey
     body = problem(r, 500)
     assert "secret" not in r.get_data(as_text=True) and "Traceback" not in r.get_data(as_text=True)
     assert body["title"] == "Internal error"
+
+
+def test_missing_values_are_named_as_required(client):
+    s = situation(0)
+    del s["attributes"]["taxi"]["time"]
+    body = problem(client.post(SCORE, json={"situations": [s]}), 422)
+    assert body["errors"] == [
+        {
+            "path": "$.situations[0].attributes.taxi.time",
+            "message": "is required: the model uses it",
+        }
+    ]
+    cols = columns([situation(0), situation(1)])
+    del cols["context"]["income"]
+    body = problem(client.post(SCORE, json={"columns": cols}), 422)
+    assert body["errors"] == [
+        {"path": "$.columns.context.income", "message": "is required: the model uses it"}
+    ]

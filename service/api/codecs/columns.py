@@ -14,7 +14,7 @@ import numpy as np
 from service.choice import Batch
 
 from ..problems import FieldError
-from .decoded import Decoded, columns_locator
+from .decoded import MISSING, Decoded, columns_locator
 
 ROOT = "$.columns"
 
@@ -76,6 +76,14 @@ def decode_columns(model: Any, columns: dict[str, Any]) -> Decoded:
         fits(f"{ROOT}.id", ids)
     else:
         ids = [str(i) for i in range(n)]
+    given = columns.get("attributes", {})
+    for j, a in zip(*np.nonzero(model.required), strict=True):
+        alt, attr = model.alternatives[j], model.attributes[a]
+        if attr not in given.get(alt, {}) and available[:, j].any():
+            errors.append(FieldError(f"{ROOT}.attributes.{alt}.{attr}", MISSING))
+    for c in np.flatnonzero(model.required_context_mask):
+        if model.context[c] not in columns.get("context", {}) and n:
+            errors.append(FieldError(f"{ROOT}.context.{model.context[c]}", MISSING))
     batch = Batch(attributes=x, context=z, available=available, weights=weights)
     return Decoded(
         ids=ids, batch=batch, problems=tuple(errors), locate=columns_locator(ROOT), form="columns"

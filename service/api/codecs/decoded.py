@@ -10,6 +10,12 @@ from service.choice import Batch, BatchProblem
 from ..problems import FieldError
 
 Locate = Callable[[BatchProblem], str]
+Absent = Callable[[BatchProblem], bool]
+MISSING = "is required: the model uses it"
+
+
+def never_absent(p: BatchProblem) -> bool:
+    return False
 
 
 @dataclass(frozen=True, eq=False)
@@ -22,9 +28,13 @@ class Decoded:
     """Turns a core ``BatchProblem`` into the path of its field in this request form."""
     form: str
     """``rows``, ``columns`` or ``arrow``."""
+    absent: Absent = never_absent
+    """Whether a problem's value was left out of the request (not given as non-finite)."""
 
     def errors(self, problems: Sequence[BatchProblem]) -> list[FieldError]:
-        return [FieldError(self.locate(p), p.message) for p in problems]
+        return [
+            FieldError(self.locate(p), MISSING if self.absent(p) else p.message) for p in problems
+        ]
 
     def refusals(self, problems: Sequence[BatchProblem]) -> list[FieldError]:
         """Decoding problems, then the check's problems of fields not already named (a value

@@ -5,8 +5,9 @@ from __future__ import annotations
 from collections.abc import Sequence
 from typing import Any
 
-from service.choice import Batch
+from service.choice import Batch, BatchProblem
 
+from ..problems import FieldError
 from .decoded import Decoded, rows_locator
 
 ROOT = "$.situations"
@@ -21,7 +22,18 @@ def decode_rows(model: Any, situations: Sequence[dict[str, Any]]) -> Decoded:
     ids = [str(s.get("id", i)) if isinstance(s, dict) else str(i) for i, s in enumerate(situations)]
     batch, problems = Batch.from_records(model, situations)
     locate = rows_locator(ROOT)
-    from ..problems import FieldError
 
     errors = tuple(FieldError(locate(p), p.message) for p in problems)
-    return Decoded(ids=ids, batch=batch, problems=errors, locate=locate, form="rows")
+
+    def absent(p: BatchProblem) -> bool:
+        """A used attribute or context value left out of its situation."""
+        if p.situation < 0 or p.field[:1] not in (("attributes",), ("context",)):
+            return False
+        node: Any = situations[p.situation]
+        for key in p.field:
+            if not isinstance(node, dict) or key not in node:
+                return True
+            node = node[key]
+        return False
+
+    return Decoded(ids=ids, batch=batch, problems=errors, locate=locate, form="rows", absent=absent)
