@@ -68,14 +68,17 @@ class _Problems:
 
 def _floats(
     table: pa.Table, name: str, problems: _Problems
-) -> tuple[np.ndarray, np.ndarray] | None:
-    """(values with NaN for nulls, null mask) of a numeric column; None if not numeric."""
+) -> tuple[np.ndarray, np.ndarray | None] | None:
+    """(values with NaN for nulls, null mask or None if no nulls) of a numeric column;
+    None if the column is not numeric."""
     column = table.column(name)
     numeric = pa.types.is_floating(column.type) or pa.types.is_integer(column.type)
     if not (numeric or pa.types.is_null(column.type)):
         problems.whole(name, f"must be a numeric column, not {column.type}")
         return None
-    column = column.cast(pa.float64())
+    column = column.cast(pa.float64()) if column.type != pa.float64() else column
+    if column.null_count == 0:
+        return column.to_numpy(), None
     nulls = column.is_null().to_numpy(zero_copy_only=False)
     values = column.fill_null(np.nan).to_numpy()
     return np.asarray(values, dtype=np.float64), np.asarray(nulls, dtype=bool)
@@ -83,7 +86,7 @@ def _floats(
 
 def _per_situation(
     values: np.ndarray,
-    nulls: np.ndarray,
+    nulls: np.ndarray | None,
     sit: np.ndarray,
     n: int,
     first: np.ndarray,
@@ -93,10 +96,25 @@ def _per_situation(
     """A column constant within each situation, as (N,); refuses rows that differ."""
     out = np.full(n, np.nan)
     out[sit[first]] = values[first]
-    same = (values == out[sit]) | (np.isnan(values) & np.isnan(out[sit]))
+    spread = out[sit]
+    same = (values == spread) | (np.isnan(values) & np.isnan(spread))
     problems.rows(~same, column, "must be constant within a situation")
-    problems.rows(nulls, column, "is null")
+    if nulls is not None:
+        problems.rows(nulls, column, "is null")
     return out
+
+
+def _situations(column: pa.Array, problems: _Problems) -> tuple[pa.Array, np.ndarray]:
+    """(distinct ids in order of first appearance, situation index of every row)."""
+    nulls = column.is_null().to_numpy(zero_copy_only=False)
+    problems.rows(nulls, "situation", "is null")
+    if pa.types.is_integer(column.type) and not nulls.any() and len(column):
+        values = column.to_numpy()
+        if bool(np.all(values[1:] >= values[:-1])):  # grouped and sorted: no hashing needed
+            starts = np.r_[True, values[1:] != values[:-1]]
+            return pa.array(values[starts], column.type), np.cumsum(starts) - 1
+    encoded = pc.dictionary_encode(column)
+    return encoded.dictionary, encoded.indices.fill_null(0).to_numpy().astype(np.intp)
 
 
 def batch_from_table(
@@ -136,32 +154,36 @@ def batch_from_table(
         return pa.array([], pa.null()), empty, problems.result()
     rows = len(table)
 
-    sit_col = table.column("situation").combine_chunks()
-    problems.rows(sit_col.is_null().to_numpy(zero_copy_only=False), "situation", "is null")
-    encoded = pc.dictionary_encode(sit_col)
-    ids = encoded.dictionary
-    sit = encoded.indices.fill_null(0).to_numpy().astype(np.intp)
+    ids, sit = _situations(table.column("situation").combine_chunks(), problems)
     n = len(ids)
 
     alt_col = table.column("alternative").combine_chunks()
-    if not (pa.types.is_string(alt_col.type) or pa.types.is_large_string(alt_col.type)):
-        alt_col = alt_col.cast(pa.string()) if pa.types.is_dictionary(alt_col.type) else alt_col
-    alt_encoded = pc.dictionary_encode(alt_col)
-    names = alt_encoded.dictionary.to_pylist()
-    lookup = np.array(
-        [model.alternatives.index(a) if a in model.alternatives else -1 for a in names] or [-1]
-    )
-    alt = lookup[alt_encoded.indices.fill_null(0).to_numpy().astype(np.intp)]
+    if pa.types.is_dictionary(alt_col.type):
+        alt_col = alt_col.cast(pa.string())
     alt_nulls = alt_col.is_null().to_numpy(zero_copy_only=False)
+    try:
+        found = pc.index_in(alt_col, value_set=pa.array(model.alternatives, alt_col.type))
+        alt = found.fill_null(-1).to_numpy().astype(np.intp)
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError, pa.ArrowTypeError):
+        problems.whole("alternative", f"must be a string column, not {alt_col.type}")
+        return pa.array([], pa.null()), empty, problems.result()
     problems.rows(alt_nulls, "alternative", "is null")
     problems.rows((alt < 0) & ~alt_nulls, "alternative", "not an alternative of the model")
-    good = (alt >= 0) & ~alt_nulls
+    good = alt >= 0
+    alt_or_0 = np.where(good, alt, 0)
 
-    cell = sit * n_j + np.where(good, alt, 0)
-    order = np.argsort(cell, kind="stable")
-    sorted_cells = cell[order]
+    # Duplicates and a reference row per situation; the common layout (rows grouped by
+    # situation, alternatives in model order) is recognised in O(rows) without sorting.
+    cell = sit * n_j + alt_or_0
     repeat = np.zeros(rows, dtype=bool)
-    repeat[order[1:]] = (sorted_cells[1:] == sorted_cells[:-1]) & good[order[1:]]
+    if rows and good.all() and bool(np.all(cell[1:] > cell[:-1])):
+        first = np.r_[True, sit[1:] != sit[:-1]]
+    else:
+        order = np.argsort(cell, kind="stable")
+        sorted_cells, sorted_sit = cell[order], sit[order]
+        repeat[order[1:]] = (sorted_cells[1:] == sorted_cells[:-1]) & good[order[1:]]
+        first = np.zeros(rows, dtype=bool)
+        first[order[np.r_[True, sorted_sit[1:] != sorted_sit[:-1]]] if rows else []] = True
     problems.rows(repeat, "alternative", "appears twice in the same situation")
 
     available_row = np.ones(rows, dtype=bool)
@@ -175,11 +197,14 @@ def batch_from_table(
             available_row = col.fill_null(False).to_numpy(zero_copy_only=False).astype(bool)
 
     use = good & ~repeat
-    r_sit, r_alt = sit[use], alt[use]
+    every = bool(use.all())
+    r_alt = alt if every else alt[use]
+    r_cell = cell if every else cell[use]
     available = np.zeros((n, n_j), dtype=bool)
-    available[r_sit, r_alt] = available_row[use]
+    available.reshape(-1)[r_cell] = available_row if every else available_row[use]
 
     x = np.where(model.required, np.nan, 0.0)[None].repeat(n, axis=0)
+    flat_x = x.reshape(-1)
     for a, attr in enumerate(model.attributes):
         if attr not in table.column_names:
             continue
@@ -187,13 +212,16 @@ def batch_from_table(
         if floats is None:
             continue
         values, nulls = floats
-        needed = model.required[np.where(good, alt, 0), a] & good & available_row
-        problems.rows(needed & nulls, attr, f"is null but the alternative uses {attr}")
-        problems.rows(needed & ~nulls & ~np.isfinite(values), attr, "must be a finite number")
-        x[r_sit, r_alt, a] = np.where(model.required[r_alt, a], values[use], 0.0)
+        needed = model.required[alt_or_0, a] & good & available_row
+        bad = ~np.isfinite(values) & needed
+        if nulls is not None:
+            problems.rows(needed & nulls, attr, f"is null but the alternative uses {attr}")
+            bad &= ~nulls
+        problems.rows(bad, attr, "must be a finite number")
+        used = model.required[r_alt, a]
+        picked = values if every else values[use]
+        flat_x[r_cell * n_a + a] = picked if used.all() else np.where(used, picked, 0.0)
 
-    first = np.zeros(rows, dtype=bool)
-    first[np.unique(sit, return_index=True)[1]] = True
     z = np.where(model.required_context_mask, np.nan, 0.0)[None].repeat(n, axis=0)
     for c, name in enumerate(model.context):
         if name not in table.column_names:

@@ -177,3 +177,22 @@ def test_many_problems_are_capped_and_counted(model):
     found = problems_of(model, "\n".join([HEADER, *rows]))
     assert len(found) == 101
     assert found[-1] == (-1, "", "200 more problems not listed")
+
+
+def test_integer_ids_in_any_order_and_dictionary_alternatives(model):
+    _, table = random_situations(60, seed=8)
+    ids = [int(s[1:]) for s in table["situation"].to_pylist()]
+    as_ints = table.set_column(0, "situation", pa.array(ids))
+    order = np.random.default_rng(2).permutation(len(table))
+    shuffled = as_ints.take(order)
+    coded = shuffled.set_column(
+        1, "alternative", shuffled["alternative"].combine_chunks().dictionary_encode()
+    )
+    got_ids, batch, problems = batch_from_table(model, coded)
+    ref_ids, ref, _ = batch_from_table(model, as_ints)  # grouped and sorted: the fast path
+    assert problems == ()
+    position = {v: i for i, v in enumerate(got_ids.to_pylist())}
+    perm = [position[v] for v in ref_ids.to_pylist()]
+    np.testing.assert_array_equal(batch.available[perm], ref.available)
+    np.testing.assert_array_equal(batch.attributes[perm], ref.attributes)
+    np.testing.assert_array_equal(batch.context[perm], ref.context)
