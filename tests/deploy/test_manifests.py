@@ -50,16 +50,18 @@ def _container() -> dict:
     return containers[0]
 
 
-def service_variables() -> set[str]:
+def service_variables(with_cli: bool = False) -> set[str]:
     """Every environment variable the service and store read: one per field of the settings
-    (``CHOICECAST_<FIELD>``) plus the names spelt out in the code (the store's own)."""
+    (``CHOICECAST_<FIELD>``) plus the names spelt out in the code. The ops command's own
+    variables (service/cli.py, e.g. who makes a change) only with ``with_cli``."""
     from service.api.config import ENV_PREFIX, Settings
 
     found = {ENV_PREFIX + field.name.upper() for field in dataclasses.fields(Settings)}
     pattern = re.compile(r"\bCHOICECAST_[A-Z0-9_]+\b")
     for folder in ("service", "model_store"):
         for path in (REPO / folder).rglob("*.py"):
-            found.update(pattern.findall(path.read_text()))
+            if with_cli or path.name != "cli.py":
+                found.update(pattern.findall(path.read_text()))
     return found
 
 
@@ -261,7 +263,7 @@ def test_every_variable_is_in_the_configuration_reference() -> None:
     reference = (REPO / "docs" / "production.md").read_text()
     section = reference.split("## Configuration reference", 1)[1].split("\n## ", 1)[0]
     documented = set(re.findall(r"`([A-Z][A-Z0-9_]+)`", section))
-    missing = (service_variables() | AWS_VARIABLES) - documented
+    missing = (service_variables(with_cli=True) | AWS_VARIABLES) - documented
     assert not missing, f"not in docs/production.md: {sorted(missing)}"
     for key in one("ConfigMap")["data"]:
         assert key in documented, key
