@@ -7,10 +7,12 @@ from dataclasses import dataclass
 import numpy as np
 
 from service.choice.batch import Batch, BatchProblem
-from service.choice.compiled import CompiledModel
+from service.choice.compiled import CompiledModel, ValueChecks
 
 MAX_REPORTED = 100
 """At most this many problems (and as many warnings) are listed; the counts say the rest."""
+CHUNK_VALUES = 2**16
+"""Used values are gathered and checked in blocks of about this many, bounding memory."""
 
 
 @dataclass(frozen=True, eq=False)
@@ -39,41 +41,59 @@ class BatchCheck:
 
 
 class _Collector:
-    """Accumulates masked findings, listing at most ``cap`` of them."""
+    """Counts findings and keeps the first ``cap`` of them by situation."""
 
     def __init__(self, cap: int):
         self.cap = cap
         self.count = 0
         self.items: list[BatchProblem] = []
+        self.full = False
 
     def add(
         self,
         mask: np.ndarray,
-        field: tuple[str, ...],
-        message: str,
+        fields: tuple[str, ...] | tuple[tuple[str, ...], ...],
+        message: str | tuple[str, ...],
         values: np.ndarray | None = None,
+        offset: int = 0,
     ) -> None:
-        """``mask`` (N,) marks the bad situations; ``message`` may hold ``{v}``, filled
-        with each bad situation's entry of ``values``."""
+        """``mask`` (n,) or (n, R) marks bad situations (rows, from ``offset``) and values
+        (columns, with one field and message each); a message may hold ``{v}``, filled
+        with the entry of ``values``."""
         hits = int(np.count_nonzero(mask))
         if not hits:
             return
         self.count += hits
-        rows = np.flatnonzero(mask)[: self.cap]
-        if values is None:
-            texts = [message] * len(rows)
+        if self.full:
+            return
+        if mask.ndim == 1:
+            rows = np.flatnonzero(mask)[: self.cap]
+            cols = np.zeros(len(rows), dtype=np.intp)
+            fields, message = (fields,), (message,)  # type: ignore[assignment]
+            vals = None if values is None else values[rows]
         else:
-            texts = [message.format(v=float(v)) for v in values[rows]]
-        self.items.extend(BatchProblem(int(r), field, t) for r, t in zip(rows, texts, strict=True))
+            rows, cols = (i[: self.cap] for i in np.nonzero(mask))
+            vals = None if values is None else values[rows, cols]
+        for k, (r, c) in enumerate(zip(rows, cols, strict=True)):
+            text = message[c] if isinstance(message, tuple) else message
+            if vals is not None:
+                text = text.format(v=float(vals[k]))
+            self.items.append(BatchProblem(int(r) + offset, fields[c], text))  # type: ignore[arg-type]
 
     def add_whole(self, field: tuple[str, ...], message: str) -> None:
         """A finding about the batch as a whole (situation -1)."""
         self.count += 1
         self.items.append(BatchProblem(-1, field, message))
 
+    def settle(self, before: int) -> None:
+        """Keep the first ``cap`` items; stop listing once they all lie before ``before``
+        (the rows still to come cannot displace them)."""
+        self.items = sorted(self.items, key=lambda p: p.situation)[: self.cap]
+        self.full = len(self.items) == self.cap and self.items[-1].situation < before
+
     def result(self) -> tuple[BatchProblem, ...]:
-        self.items.sort(key=lambda p: p.situation)
-        return tuple(self.items[: self.cap])
+        self.settle(0)
+        return tuple(self.items)
 
 
 def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPORTED) -> BatchCheck:
@@ -82,45 +102,20 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
     Refused (problems): wrong shapes; a used cell of an available alternative or a used
     context value that is not finite; x <= 0 under log, x <= -1 under log1p; no
     alternative available; a weight that is not finite or is negative; weights summing to
-    0.  Outside the range seen in estimation (the spec's low/high): a warning under
+    0.  Outside the range seen in estimation (the spec's low/high; scoring far outside the
+    estimation data is extrapolation, common practice to flag it): a warning under
     ``warn``, a problem under ``reject``, clipped to the range (plus a warning) under
     ``clip``.
     """
-    problems, warnings = _Collector(max_reported), _Collector(max_reported)
     shape_problems = _shape_problems(model, batch)
     if shape_problems:
         return BatchCheck(shape_problems, (), batch, len(shape_problems), 0)
-    x, z, avail, w = batch.attributes, batch.context, batch.available, batch.weights
     n = batch.size
     if n == 0:
         bp = BatchProblem(-1, ("situations",), "the batch has no situations")
         return BatchCheck((bp,), (), batch, 1, 0)
-
-    js, as_ = np.nonzero(model.required)
-    # One pass over the whole array: its sum is finite only if every cell is (an
-    # overflowing sum of finite values merely sends us to the per-cell check).
-    with np.errstate(over="ignore", invalid="ignore"):
-        all_finite = bool(np.isfinite(x.sum()))
-    for j, a in zip(js, as_, strict=True):
-        field = ("attributes", model.alternatives[j], model.attributes[a])
-        col, live = x[:, j, a], avail[:, j]
-        if not all_finite:
-            bad = live & ~np.isfinite(col)
-            problems.add(bad, field, "must be given as a finite number (got {v})", col)
-        if model.log_cells[j, a]:
-            problems.add(live & (col <= 0), field, "must be > 0 under log (got {v:g})", col)
-        if model.log1p_cells[j, a]:
-            bad = live & (col <= -1)
-            problems.add(bad, field, "must be > -1 under log1p (got {v:g})", col)
-    used_c = np.flatnonzero(model.required_context_mask)
-    for c in used_c:
-        col = z[:, c]
-        problems.add(
-            ~np.isfinite(col),
-            ("context", model.context[c]),
-            "must be given as a finite number (got {v})",
-            col,
-        )
+    problems, warnings = _Collector(max_reported), _Collector(max_reported)
+    avail, w = batch.available, batch.weights
     problems.add(~avail.any(axis=1), ("available",), "no alternative is available")
     w_finite = np.isfinite(w)
     problems.add(~w_finite, ("weight",), "must be finite (got {v})", w)
@@ -128,7 +123,52 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
     if w_finite.all() and (w >= 0).all() and not w.sum() > 0:
         problems.add_whole(("weight",), "weights must have a positive sum")
 
-    scored = _apply_ranges(model, batch, js, as_, used_c, problems, warnings)
+    policy = model.spec.range_policy
+    verb = "clipped to" if policy == "clip" else "outside"
+    sink = problems if policy == "reject" else warnings
+    clips: list[tuple[ValueChecks, np.ndarray, bool]] = []
+    for all_checks, arr, cells in (
+        (model.attribute_checks, batch.attributes, True),
+        (model.context_checks, batch.context, False),
+    ):
+        # One pass decides whether finiteness needs checking value by value: a sum is
+        # finite only if every term is (an overflowing sum just takes the long way).
+        with np.errstate(over="ignore", invalid="ignore"):
+            all_finite = bool(np.isfinite(arr.sum()))
+        which = np.arange(len(all_checks)) if not all_finite else np.flatnonzero(all_checks.bounded)
+        if not len(which):
+            continue
+        checks = all_checks.select(which)
+        clip = np.zeros(len(checks), dtype=bool)
+        range_messages = tuple(
+            f"{{v:g}} is {verb} the estimation range [{lo:g}, {hi:g}]"
+            for lo, hi in zip(checks.low, checks.high, strict=True)
+        )
+        step = max(1, CHUNK_VALUES // len(checks))
+        for start in range(0, n, step):
+            stop = min(n, start + step)
+            problems.settle(start)
+            sink.settle(start)
+            if cells:
+                values = arr[start:stop][:, checks.alternative, checks.index]
+                live = avail[start:stop][:, checks.alternative]
+            else:
+                values = arr[start:stop][:, checks.index]
+                live = np.ones_like(values, dtype=bool)
+            finite = np.isfinite(values)
+            message = "must be given as a finite number (got {v})"
+            problems.add(live & ~finite, checks.fields, message, values, start)
+            with np.errstate(invalid="ignore"):
+                outside_domain = live & finite & (values <= checks.domain)
+                outside_range = live & finite & ((values < checks.low) | (values > checks.high))
+            problems.add(outside_domain, checks.fields, checks.domain_messages, values, start)
+            sink.add(outside_range, checks.fields, range_messages, values, start)
+            clip |= outside_range.any(axis=0)
+        clips.append((checks, clip, cells))
+
+    scored = batch
+    if policy == "clip" and any(clip.any() for _, clip, _ in clips):
+        scored = _clipped(batch, clips)
     return BatchCheck(
         problems=problems.result(),
         warnings=warnings.result(),
@@ -136,6 +176,22 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
         problem_count=problems.count,
         warning_count=warnings.count,
     )
+
+
+def _clipped(batch: Batch, clips: list[tuple[ValueChecks, np.ndarray, bool]]) -> Batch:
+    """A copy with the flagged values clipped to their estimation range."""
+    x, z = batch.attributes, batch.context
+    for checks, clip, cells in clips:
+        if not clip.any():
+            continue
+        if cells:
+            x = x.copy()
+        else:
+            z = z.copy()
+        for r in np.flatnonzero(clip):
+            col = x[:, checks.alternative[r], checks.index[r]] if cells else z[:, checks.index[r]]
+            np.clip(col, checks.low[r], checks.high[r], out=col)
+    return Batch(attributes=x, context=z, available=batch.available, weights=batch.weights)
 
 
 def _shape_problems(model: CompiledModel, batch: Batch) -> tuple[BatchProblem, ...]:
@@ -155,57 +211,3 @@ def _shape_problems(model: CompiledModel, batch: Batch) -> tuple[BatchProblem, .
             want = f"{shape} {np.dtype(dtype)}"
             out.append(BatchProblem(-1, (name,), f"must be an array {want}, got {got}"))
     return tuple(out)
-
-
-def _apply_ranges(
-    model: CompiledModel,
-    batch: Batch,
-    js: np.ndarray,
-    as_: np.ndarray,
-    used_c: np.ndarray,
-    problems: _Collector,
-    warnings: _Collector,
-) -> Batch:
-    """The spec's range policy on used cells: scoring far outside the data a model was
-    estimated on is extrapolation (common practice to flag it)."""
-    policy = model.spec.range_policy
-    sink = problems if policy == "reject" else warnings
-    x_clips: list[tuple[int, int, float, float]] = []
-    z_clips: list[tuple[int, float, float]] = []
-
-    def report(col: np.ndarray, live: np.ndarray, low: float, high: float, field: tuple) -> bool:
-        with np.errstate(invalid="ignore"):
-            out = live & ((col < low) | (col > high))
-        if not out.any():
-            return False
-        verb = {"warn": "outside", "reject": "outside", "clip": "clipped to"}[policy]
-        sink.add(out, field, f"{{v:g}} is {verb} the estimation range [{low:g}, {high:g}]", col)
-        return True
-
-    for j, a in zip(js, as_, strict=True):
-        var = model.spec.attributes[a]
-        if var.low is None and var.high is None:
-            continue
-        low = -np.inf if var.low is None else var.low
-        high = np.inf if var.high is None else var.high
-        field = ("attributes", model.alternatives[j], var.name)
-        if report(batch.attributes[:, j, a], batch.available[:, j], low, high, field):
-            x_clips.append((j, a, low, high))
-    for c in used_c:
-        var = model.spec.context[c]
-        if var.low is None and var.high is None:
-            continue
-        low = -np.inf if var.low is None else var.low
-        high = np.inf if var.high is None else var.high
-        live = np.ones(batch.size, dtype=bool)
-        if report(batch.context[:, c], live, low, high, ("context", var.name)):
-            z_clips.append((c, low, high))
-    if policy != "clip" or not (x_clips or z_clips):
-        return batch
-    x = batch.attributes.copy() if x_clips else batch.attributes
-    z = batch.context.copy() if z_clips else batch.context
-    for j, a, low, high in x_clips:
-        np.clip(x[:, j, a], low, high, out=x[:, j, a])
-    for c, low, high in z_clips:
-        np.clip(z[:, c], low, high, out=z[:, c])
-    return Batch(attributes=x, context=z, available=batch.available, weights=batch.weights)

@@ -51,6 +51,66 @@ class TermArrays:
 
 
 @dataclass(frozen=True, eq=False)
+class ValueChecks:
+    """The values a model uses, R of them, with what check_batch requires of each."""
+
+    fields: tuple[tuple[str, ...], ...]
+    """Field path of each value, e.g. ("attributes", "bus", "fare") or ("context", "income")."""
+    alternative: np.ndarray
+    """(R,) alternative index (NONE for a context variable)."""
+    index: np.ndarray
+    """(R,) attribute or context index."""
+    domain: np.ndarray
+    """(R,) the value must exceed this (0 under log, -1 under log1p, else -inf)."""
+    domain_messages: tuple[str, ...]
+    low: np.ndarray
+    """(R,) estimation range, -inf / inf where open."""
+    high: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.index)
+
+    @property
+    def bounded(self) -> np.ndarray:
+        """(R,) bool: values with a domain or range bound (more than a finiteness check)."""
+        return np.isfinite(self.domain) | np.isfinite(self.low) | np.isfinite(self.high)
+
+    def select(self, which: np.ndarray) -> ValueChecks:
+        """The checks of the values ``which`` (integer positions)."""
+        return ValueChecks(
+            fields=tuple(self.fields[i] for i in which),
+            alternative=self.alternative[which],
+            index=self.index[which],
+            domain=self.domain[which],
+            domain_messages=tuple(self.domain_messages[i] for i in which),
+            low=self.low[which],
+            high=self.high[which],
+        )
+
+
+def _value_checks(
+    fields: list[tuple[str, ...]],
+    alternative: list[int],
+    index: list[int],
+    domain: list[float],
+    bounds: list[tuple[float | None, float | None]],
+) -> ValueChecks:
+    messages = {
+        0.0: "must be > 0 under log (got {v:g})",
+        -1.0: "must be > -1 under log1p (got {v:g})",
+    }
+    return ValueChecks(
+        fields=tuple(fields),
+        alternative=np.array(alternative, dtype=np.intp),
+        index=np.array(index, dtype=np.intp),
+        domain=np.array(domain, dtype=np.float64),
+        domain_messages=tuple(messages.get(d, "") for d in domain),
+        low=np.array([-np.inf if lo is None else lo for lo, _ in bounds], dtype=np.float64),
+        high=np.array([np.inf if hi is None else hi for _, hi in bounds], dtype=np.float64),
+    )
+
+
+@dataclass(frozen=True, eq=False)
 class CompiledModel:
     """A model version ready to score batches (build it with :func:`compile_model`)."""
 
@@ -78,6 +138,10 @@ class CompiledModel:
     """(J, A) bool: cells under a log transform (need x > 0)."""
     log1p_cells: np.ndarray
     """(J, A) bool: cells under a log1p transform (need x > -1)."""
+    attribute_checks: ValueChecks
+    """The used (alternative, attribute) cells, for check_batch."""
+    context_checks: ValueChecks
+    """The used context variables, for check_batch."""
     nest_ids: tuple[str, ...] = ()
     nest_of: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.intp))
     """(J,) nest index of each alternative (empty for binary / multinomial)."""
@@ -161,6 +225,29 @@ def compile_model(spec: ModelSpec, coefficients: Coefficients) -> CompiledModel:
     required_context_mask = np.zeros(n_c, dtype=bool)
     required_context_mask[terms.context[terms.context != NONE]] = True
 
+    required = cells(has_attr)
+    log_cells = cells(has_attr & (terms.transform == LOG))
+    log1p_cells = cells(has_attr & (terms.transform == LOG1P))
+    js, as_ = np.nonzero(required)
+    attribute_checks = _value_checks(
+        [("attributes", alternatives[j], attributes[a]) for j, a in zip(js, as_, strict=True)],
+        list(js),
+        list(as_),
+        [
+            0.0 if log_cells[j, a] else -1.0 if log1p_cells[j, a] else -np.inf
+            for j, a in zip(js, as_, strict=True)
+        ],
+        [(spec.attributes[a].low, spec.attributes[a].high) for a in as_],
+    )
+    cs = np.flatnonzero(required_context_mask)
+    context_checks = _value_checks(
+        [("context", context[c]) for c in cs],
+        [NONE] * len(cs),
+        list(cs),
+        [-np.inf] * len(cs),
+        [(spec.context[c].low, spec.context[c].high) for c in cs],
+    )
+
     nest_kwargs = {}
     if spec.nests:
         nest_of = np.full(n_j, NONE, dtype=np.intp)
@@ -185,9 +272,11 @@ def compile_model(spec: ModelSpec, coefficients: Coefficients) -> CompiledModel:
         linear=linear,
         constants=constants,
         general_terms=general,
-        required=cells(has_attr),
+        required=required,
         required_context_mask=required_context_mask,
-        log_cells=cells(has_attr & (terms.transform == LOG)),
-        log1p_cells=cells(has_attr & (terms.transform == LOG1P)),
+        log_cells=log_cells,
+        log1p_cells=log1p_cells,
+        attribute_checks=attribute_checks,
+        context_checks=context_checks,
         **nest_kwargs,
     )

@@ -165,3 +165,63 @@ def test_scoring_an_unchecked_empty_or_weightless_batch_refuses(mnl):
     with pytest.raises(ScoringError) as err:
         score(mnl, weightless, ScoreOptions(aggregate=True))
     assert err.value.problems[0].path == "weights"
+
+
+def brute_force_findings(model, batch):
+    """Every (situation, field) the check must find, value by value (plain Python)."""
+    found = set()
+    for n in range(batch.size):
+        for j, alt in enumerate(model.alternatives):
+            if not batch.available[n, j]:
+                continue
+            for a, attr in enumerate(model.attributes):
+                if not model.required[j, a]:
+                    continue
+                v = batch.attributes[n, j, a]
+                if (
+                    not np.isfinite(v)
+                    or (model.log_cells[j, a] and v <= 0)
+                    or (model.log1p_cells[j, a] and v <= -1)
+                ):
+                    found.add((n, ("attributes", alt, attr)))
+        if not np.isfinite(batch.context[n, 0]):
+            found.add((n, ("context", "income")))
+        if not batch.available[n].any():
+            found.add((n, ("available",)))
+    return found
+
+
+@pytest.mark.parametrize("chunk", [3, 64, 2**16])
+def test_blockwise_checks_find_exactly_what_a_value_by_value_check_finds(mnl, chunk, monkeypatch):
+    import service.choice.checks as checks
+
+    monkeypatch.setattr(checks, "CHUNK_VALUES", chunk)
+    batch = commute_batch(mnl, 400, seed=12, p_unavailable=0.3)
+    rng = np.random.default_rng(13)
+    x = batch.attributes
+    x[rng.random(x.shape) < 0.01] = np.nan
+    x[:, :, 1][rng.random(x.shape[:2]) < 0.01] = 0.0  # time under log
+    x[:, :, 2][rng.random(x.shape[:2]) < 0.01] = -3.0  # wait: log1p for bus only
+    batch.context[rng.random(400) < 0.02] = np.inf
+    batch.available[rng.random(400) < 0.01] = False
+    expected = brute_force_findings(mnl, batch)
+    check = check_batch(mnl, batch, max_reported=10_000)
+    # Source: the definitions of the checks applied one value at a time (common practice).
+    assert fields(check.problems) == expected
+    assert check.problem_count == len(expected)
+    capped = check_batch(mnl, batch)
+    assert capped.problem_count == len(expected)
+    assert list(capped.problems) == sorted(check.problems, key=lambda p: p.situation)[:100]
+
+
+def test_clipping_applies_to_every_block(mnl, monkeypatch):
+    import service.choice.checks as checks
+
+    monkeypatch.setattr(checks, "CHUNK_VALUES", 10)
+    spec = dict(commute_spec(), range_policy="clip")
+    model = model_from(spec, commute_model().coefficients.as_mapping())
+    batch = commute_batch(model, 50, seed=14)
+    batch.attributes[:, 1, 0] = 99.0  # bus fare above 30 everywhere
+    check = check_batch(model, batch)
+    assert check.warning_count == 50 and check.ok
+    np.testing.assert_array_equal(check.batch.attributes[:, 1, 0], 30.0)
