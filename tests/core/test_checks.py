@@ -225,3 +225,17 @@ def test_clipping_applies_to_every_block(mnl, monkeypatch):
     check = check_batch(model, batch)
     assert check.warning_count == 50 and check.ok
     np.testing.assert_array_equal(check.batch.attributes[:, 1, 0], 30.0)
+
+
+@pytest.mark.parametrize("policy", ["warn", "reject", "clip"])
+def test_range_policy_applies_to_context_variables(policy):
+    spec = dict(commute_spec(), range_policy=policy)
+    spec["context"] = [{"name": "income", "low": 10, "high": 150}]
+    model = model_from(spec, commute_model().coefficients.as_mapping())
+    batch, _ = Batch.from_records(model, [record(), record(context={"income": 400.0})])
+    check = check_batch(model, batch)
+    found = fields(check.warnings if policy != "reject" else check.problems)
+    assert found == {(1, ("context", "income"))}
+    if policy == "clip":
+        assert check.batch.context[1, 0] == 150.0 and batch.context[1, 0] == 400.0
+        assert check.batch.attributes is batch.attributes  # nothing else copied
