@@ -45,6 +45,14 @@ class QueryBool(fields.Boolean):
     falsy = frozenset({"false", "0", "no"})
 
 
+def _array(value: list) -> np.ndarray | None:
+    """The list as one array, or None when it is ragged (nested lists of unequal lengths)."""
+    try:
+        return np.asarray(value)
+    except (ValueError, TypeError, OverflowError):
+        return None
+
+
 class NumberColumn(fields.Field):
     """A list of JSON numbers, loaded as one float64 array (vectorised type check)."""
 
@@ -55,8 +63,8 @@ class NumberColumn(fields.Field):
     def _deserialize(self, value: Any, attr: Any, data: Any, **kwargs: Any) -> np.ndarray:
         if not isinstance(value, list):
             raise ValidationError("must be a list of numbers")
-        arr = np.asarray(value) if value else np.zeros(0)
-        if arr.ndim != 1 or arr.dtype.kind not in "iuf":
+        arr = _array(value) if value else np.zeros(0)
+        if arr is None or arr.ndim != 1 or arr.dtype.kind not in "iuf":
             raise ValidationError("must be a list of numbers (no strings, booleans or nulls)")
         return arr.astype(np.float64, copy=False)
 
@@ -69,8 +77,8 @@ class BoolColumn(fields.Field):
     def _deserialize(self, value: Any, attr: Any, data: Any, **kwargs: Any) -> np.ndarray:
         if not isinstance(value, list):
             raise ValidationError("must be a list of true/false")
-        arr = np.asarray(value) if value else np.zeros(0, dtype=bool)
-        if arr.ndim != 1 or arr.dtype.kind != "b":
+        arr = _array(value) if value else np.zeros(0, dtype=bool)
+        if arr is None or arr.ndim != 1 or arr.dtype.kind != "b":
             raise ValidationError("must be a list of true/false")
         return arr
 
@@ -390,6 +398,15 @@ class RoutingStateSchema(Schema):
     generation = fields.Integer(required=True)
     live = fields.Dict(keys=fields.String(), values=FiniteNumber(), required=True)
     shadow = fields.String(allow_none=True)
+    # The routing endpoints return the whole history record.
+    format_version = fields.Integer()
+    model = fields.String()
+    previous_generation = fields.Integer(allow_none=True)
+    action = fields.String(allow_none=True)
+    changed_by = fields.String(allow_none=True)
+    changed_at = fields.String(allow_none=True)
+    reason = fields.String(allow_none=True)
+    restored_generation = fields.Integer(allow_none=True)
 
 
 class ModelSummarySchema(Schema):
