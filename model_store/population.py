@@ -4,7 +4,6 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-import numpy as np
 import pyarrow as pa
 
 from model_store.store import LoadedVersion
@@ -78,9 +77,3 @@ def score_population(
 def known_columns(loaded: LoadedVersion) -> set[str]:
     spec = loaded.spec
     return {v.name for v in spec.attributes} | {v.name for v in spec.context}
-
-
-def weighted_shares(p: np.ndarray, weights: np.ndarray) -> np.ndarray:
-    """Sample enumeration: S_j = sum_n w_n P_nj / sum_n w_n (Train 2009, sec. 3.6.1; from
-    memory). ``p`` is (N, J)."""
-    return weights @ p / weights.sum()

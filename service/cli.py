@@ -447,8 +447,8 @@ def cmd_compare(args: argparse.Namespace) -> int:
     try:
         result = compare_versions(a, b, _population(args.population))
     except ValueError as exc:
-        if isinstance(exc, SpecError):
-            raise
+        if getattr(exc, "problems", None):
+            raise  # SpecError / ScoringError: listed problem by problem
         raise UserError(str(exc)) from None
     names = (args.v1, args.v2)
     if args.json:

@@ -131,3 +131,27 @@ def test_serve_hands_its_options_to_the_server(monkeypatch):
     assert args == ("s3://m/p",)
     assert kwargs["port"] == 8123 and kwargs["workers"] == 2 and kwargs["host"] == "127.0.0.1"
     assert kwargs["s3_endpoint"] == "http://127.0.0.1:9"
+
+
+def test_bad_population_rows_are_named(cli, ferry_files, tmp_path):
+    from cli_cases import publish
+
+    publish(cli, ferry_files, "v1")
+    bad = tmp_path / "bad.csv"
+    bad.write_text(
+        "situation,alternative,fare,minutes,income\n"
+        "1,fast_boat,3,10,50\n1,ferry,3,10,50\n"
+        "2,fast_boat,3,0,50\n2,stay_home,,,50\n"
+    )
+    result = cli("compare", "ferry", "v1", "v1", "--population", str(bad))
+    assert result.code == 2
+    assert "population[row 1].alternative: not an alternative of the model" in result.err
+    bad.write_text(
+        "situation,alternative,fare,minutes,income\n2,fast_boat,3,0,50\n2,stay_home,,,50\n"
+    )
+    result = cli("compare", "ferry", "v1", "v1", "--population", str(bad))
+    assert result.code == 2
+    assert (
+        "population[situation 2].attributes.fast_boat.minutes: must be > 0 under log" in result.err
+    )
+    assert "Traceback" not in result.err
