@@ -38,8 +38,18 @@ class FileBackend:
         except OSError as exc:
             raise self._unavailable(exc) from exc
 
+    def _make_dirs(self, folder: Path) -> None:
+        """mkdir -p, fsyncing the parent of every directory created (so it survives a crash)."""
+        missing = []
+        while not folder.is_dir() and folder.parent != folder:
+            missing.append(folder)
+            folder = folder.parent
+        for new in reversed(missing):
+            new.mkdir(exist_ok=True)
+            self._sync_dir(new.parent)
+
     def _write_temp(self, path: Path, data: bytes) -> Path:
-        path.parent.mkdir(parents=True, exist_ok=True)
+        self._make_dirs(path.parent)
         temp = path.parent / f".tmp-{uuid.uuid4().hex}-{path.name}"
         fd = os.open(temp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o644)
         try:
@@ -47,8 +57,12 @@ class FileBackend:
             while view:
                 view = view[os.write(fd, view) :]
             os.fsync(fd)
-        finally:
+        except BaseException:
             os.close(fd)
+            with contextlib.suppress(OSError):
+                os.unlink(temp)
+            raise
+        os.close(fd)
         return temp
 
     @staticmethod
@@ -63,7 +77,12 @@ class FileBackend:
         path = self._path(key)
         try:
             temp = self._write_temp(path, data)
-            os.replace(temp, path)
+            try:
+                os.replace(temp, path)
+            except BaseException:
+                with contextlib.suppress(OSError):
+                    os.unlink(temp)
+                raise
             self._sync_dir(path.parent)
         except OSError as exc:
             raise self._unavailable(exc) from exc
