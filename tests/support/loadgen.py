@@ -2,16 +2,20 @@
 
     python -m tests.support.loadgen --port 8000 --requests plan.json --duration 15 \\
         --concurrency 8 --out report.json
+    python -m tests.support.loadgen --port 8000 --store ./var/store --model wrenmouth_commute
 
 ``plan.json`` is a list of requests ``{"method", "path", "headers", "body"}`` (``body`` a JSON
-value, sent as ``application/json``).  Each of ``concurrency`` threads owns one
-``http.client`` connection (reopened after an error or a ``Connection: close``) and sends the
-plan's requests in turn until the duration has passed; a request in flight then completes.
+value, sent as ``application/json``); ``--model`` builds one from the store instead (valid
+situations of the model's routed spec, as the reliability tests send).  Each of
+``concurrency`` threads owns one ``http.client`` connection (reopened after an error or a
+``Connection: close``) and sends the plan's requests in turn until the duration has passed;
+a request in flight then completes.
 
 The report counts statuses and connection errors, gives throughput and latency percentiles
 (nearest-rank, common practice), and, for JSON score responses, every distinct answer:
 ``(request index, version, routing generation, probabilities of every situation)`` with how
-often it was seen, so a test can check each one against the core and the routing history.  Nothing here asserts timings.
+often it was seen, so a test can check each one against the core and the routing history.
+Nothing here asserts timings.
 """
 
 from __future__ import annotations
@@ -192,11 +196,29 @@ def run_load(
     }
 
 
+def _model_plan(store_uri: str, model: str, token: str | None) -> list[dict[str, Any]]:
+    """12 requests of 1-3 valid situations each for the live version with the largest weight."""
+    from model_store import open_store
+    from tests.support.payloads import score_plan, situations_for
+
+    store = open_store(store_uri)
+    live = store.get_routing(model).live
+    spec = store.load_version(model, max(live, key=lambda v: live[v])).spec
+    batches = [situations_for(spec, 1 + i % 3, seed=100 + i) for i in range(12)]
+    return score_plan(model, batches, token)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--host", default="127.0.0.1")
     parser.add_argument("--port", type=int, required=True)
-    parser.add_argument("--requests", type=Path, required=True, help="JSON list of requests")
+    plan_from = parser.add_mutually_exclusive_group(required=True)
+    plan_from.add_argument("--requests", type=Path, help="JSON list of requests")
+    plan_from.add_argument(
+        "--model", help="score this routed model of --store with generated valid situations"
+    )
+    parser.add_argument("--store", help="store URI (with --model)")
+    parser.add_argument("--token", help="bearer token to send (with --model)")
     parser.add_argument("--duration", type=float, default=10.0)
     parser.add_argument("--concurrency", type=int, default=8)
     parser.add_argument("--timeout", type=float, default=30.0, help="per request, seconds")
@@ -205,7 +227,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = parser.parse_args(argv)
     if args.host not in ("127.0.0.1", "localhost", "::1"):
         parser.error("the load generator only targets the local machine")
-    plan = [PlannedRequest.from_dict(d) for d in json.loads(args.requests.read_text())]
+    if args.requests:
+        plan_data = json.loads(args.requests.read_text())
+    else:
+        if not args.store:
+            parser.error("--model needs --store")
+        plan_data = _model_plan(args.store, args.model, args.token)
+    plan = [PlannedRequest.from_dict(d) for d in plan_data]
     report = run_load(
         args.host,
         args.port,
