@@ -126,6 +126,6 @@ def log_probability_derivatives(model: CompiledModel, state: ChoiceState) -> np.
         d[np.arange(n_j), np.arange(n_j)] += (1.0 / lam_alt)[:, None]
     else:
         d[np.arange(n_j), np.arange(n_j)] += 1.0
-    d[~np.broadcast_to(avail[:, None, :], d.shape)] = 0.0
-    d[~np.broadcast_to(avail[None, :, :], d.shape)] = 0.0
+    d *= avail[:, None, :]
+    d *= avail[None, :, :]
     return d
