@@ -62,14 +62,14 @@ pytestmark = pytest.mark.slow
 MODEL = "wrenmouth_commute"  # the demo's model with two versions, routed v1 90% / v2 10%
 BUCKET = "choicecast-replicas"
 PREFIX = "production"
-POLL_SECONDS = 0.5
+POLL_SECONDS = 1.0
 # Allowance beyond the poll interval: one poll's own duration (list + read the routing, load a
 # version) and scheduling delays with three replicas, samplers and the S3 server on 2 cores.
 MARGIN_SECONDS = 2.5
 SAMPLERS_PER_REPLICA = 2
-# Pause between one sampler's requests: a steady, realistic load (at most ~25 requests/s per
+# Pause between one sampler's requests: a steady, realistic load (at most ~10 requests/s per
 # sampler) rather than saturation, which is the load test's subject (tests/reliability).
-SAMPLE_PAUSE_SECONDS = 0.04
+SAMPLE_PAUSE_SECONDS = 0.1
 STEPS = (
     ("route", MODEL, "--live", "v1=50", "v2=50", "--reason", "widen the canary"),
     ("promote", MODEL, "v2", "--reason", "v2 holds up"),
@@ -136,12 +136,18 @@ def image_command(port: int) -> list[str]:
     return [str(VENV_BIN / entrypoint[0]), *entrypoint[1:], *args]
 
 
-def start_replica(cluster: Cluster, name: str, timeout: float = 60.0) -> Running:
+def launch_replica(cluster: Cluster, name: str) -> Running:
+    """Start a replica with the image's command (returns at once; see :func:`wait_ready`)."""
     port = free_port()
     env = {**cluster.env, "PROMETHEUS_MULTIPROC_DIR": str(cluster.logs / f"{name}-metrics")}
     replica = start(name, image_command(port), env, cluster.logs)
     replica.url, replica.port = f"http://127.0.0.1:{port}", port
     cluster.replicas[name] = replica
+    return replica
+
+
+def wait_ready(replica: Running, timeout: float = 90.0) -> Running:
+    """Wait (bounded) until the replica's /readyz answers 200."""
 
     def ready() -> bool:
         if not replica.alive():
@@ -149,7 +155,7 @@ def start_replica(cluster: Cluster, name: str, timeout: float = 60.0) -> Running
         return readiness(replica.url, timeout=2)[0] == 200
 
     if not wait_until(ready, timeout, interval=0.1):
-        raise RuntimeError(f"replica {name} did not become ready:\n{replica.log_tail()}")
+        raise RuntimeError(f"replica {replica.name} did not become ready:\n{replica.log_tail()}")
     return replica
 
 
@@ -295,8 +301,13 @@ def show(cluster: Cluster) -> dict[str, Any]:
 
 @pytest.fixture(scope="module")
 def record(cluster: Cluster) -> Record:
+    t0 = time.monotonic()
     first = show(cluster)["generation"]
-    early = {name: start_replica(cluster, name) for name in ("replica-a", "replica-b")}
+    print(f"phase show {time.monotonic() - t0:.1f}s")
+    early = {name: launch_replica(cluster, name) for name in ("replica-a", "replica-b")}
+    for replica in early.values():
+        wait_ready(replica)
+    print(f"phase replicas up {time.monotonic() - t0:.1f}s")
     bodies = _bodies()
     samplers = Samplers(bodies, cluster.token)
     samplers.add(early["replica-a"], SAMPLERS_PER_REPLICA)
@@ -312,14 +323,16 @@ def record(cluster: Cluster) -> Record:
             started = time.monotonic()
             cli_ok(*step, "--store", cluster.store_uri, "--by", "replica-test", env=cluster.env)
             finished = time.monotonic()
+            print(f"phase cli {finished - started:.1f}s")
             watcher.join(timeout=70)
             written = watcher.written if watcher.written is not None else finished
             seen = {name: t - written for name, t in watcher.seen.items()}
             changes.append(Change(generation, started, finished, written, seen))
             time.sleep(1.0)
         early_states = {name: model_state(r) for name, r in early.items()}
-        late = start_replica(cluster, "replica-late")
+        late = wait_ready(launch_replica(cluster, "replica-late"))
         late_state = model_state(late)
+        print(f"phase late up {time.monotonic() - t0:.1f}s")
         samplers.add(late, SAMPLERS_PER_REPLICA)
         time.sleep(2.0)
     finally:
@@ -332,6 +345,7 @@ def record(cluster: Cluster) -> Record:
         )
     }
     listing = json.loads(cli_ok("list", "--store", cluster.store_uri, "--json", env=cluster.env))
+    print(f"phase end {time.monotonic() - t0:.1f}s")
     return Record(
         history=history,
         first_generation=first,
