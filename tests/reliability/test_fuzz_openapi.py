@@ -7,7 +7,7 @@ Two runs: one with generated model/version names (unknown names, traversal attem
 characters), one with the path names pinned to a routed demo model so generated bodies reach
 the decoders and the core.  Requests carry an admin token, so routing endpoints are fuzzed too
 (on this test's copy of the store).  CI runs ``EXAMPLES`` per operation; docs/reliability.md
-records a larger run (``CHOICECAST_FUZZ_EXAMPLES``).
+records larger runs (``CHOICECAST_FUZZ_EXAMPLES``, ``CHOICECAST_FUZZ_SEED``).
 """
 
 from __future__ import annotations
@@ -23,6 +23,8 @@ import pytest
 from tests.support.processes import VENV_BIN, clean_env, serving
 
 EXAMPLES = int(os.environ.get("CHOICECAST_FUZZ_EXAMPLES", "8"))
+SEED = os.environ.get("CHOICECAST_FUZZ_SEED")
+"""Set it for a seeded random run instead of the deterministic one (other inputs)."""
 CHECKS = "not_a_server_error,response_schema_conformance"
 
 
@@ -40,7 +42,7 @@ def schemathesis(url: str, token: str, workdir: Path, name: str, config: str | N
         CHECKS,
         "--max-examples",
         str(EXAMPLES),
-        "--generation-deterministic",
+        *(["--seed", SEED] if SEED else ["--generation-deterministic"]),
         "--request-timeout",
         "20",
         "--no-color",
