@@ -44,28 +44,28 @@ def choice_probabilities(model: CompiledModel, v: np.ndarray, available: np.ndar
     Multinomial / binary logit (Train 2009, eq. 3.6, from memory): P_i = exp V_i / sum_j exp V_j.
     Nested logit (Train 2009, eq. 4.2, from memory): P_i = exp(V_i/l_k) (sum_{j in k} exp(V_j/l_k))^(l_k-1)
     / sum_m (sum_{j in m} exp(V_j/l_m))^(l_m), computed as P(k) * P(i | k) (sec. 4.2.3).
-    Raises :class:`ScoringError` if a situation has no available alternative or a
-    non-finite utility (the batch was not checked).
+    Raises :class:`ScoringError` if a situation has no available alternative, or an
+    available alternative with a NaN or +inf utility (an unchecked batch, or overflow).
     """
     np.copyto(v, -np.inf, where=~available)
-    state = _nested(model, v, available) if model.nested else _multinomial(v, available)
-    if not np.isfinite(state.logsum).all():
-        bad = np.flatnonzero(~np.isfinite(state.logsum))[:10]
+    top = v.max(axis=0)
+    bad = np.flatnonzero(~np.isfinite(top))
+    if bad.size:
         raise ScoringError(
             [
                 Problem(
                     f"situations[{int(i)}]",
                     "no available alternative or a non-finite utility (check the batch first)",
                 )
-                for i in bad
+                for i in bad[:10]
             ]
         )
-    return state
+    return _nested(model, v, available) if model.nested else _multinomial(v, available, top)
 
 
-def _multinomial(v: np.ndarray, available: np.ndarray) -> ChoiceState:
-    """In place: ``v`` becomes P."""
-    m = v.max(axis=0)
+def _multinomial(v: np.ndarray, available: np.ndarray, m: np.ndarray | None = None) -> ChoiceState:
+    """In place: ``v`` becomes P; ``m`` is the maximum of ``v`` over alternatives if known."""
+    m = v.max(axis=0) if m is None else m
     shift = np.where(np.isfinite(m), m, 0.0)
     p = v
     p -= shift

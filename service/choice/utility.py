@@ -50,8 +50,10 @@ def utilities(model: CompiledModel, batch: Batch) -> np.ndarray:
         np.matmul(x[start:stop].transpose(1, 0, 2), weights, out=v[:, start:stop, None])
     v += model.constants[:, None]
     g = model.general_terms
-    for t in range(len(g)):
-        v[g.alternative[t]] += model.beta[g.coefficient[t]] * _feature(g, t, x, z)
+    # Overflow gives an infinite or NaN utility, which choice_probabilities refuses by name.
+    with np.errstate(over="ignore", invalid="ignore"):
+        for t in range(len(g)):
+            v[g.alternative[t]] += model.beta[g.coefficient[t]] * _feature(g, t, x, z)
     return v
 
 

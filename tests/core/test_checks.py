@@ -239,3 +239,15 @@ def test_range_policy_applies_to_context_variables(policy):
     if policy == "clip":
         assert check.batch.context[1, 0] == 150.0 and batch.context[1, 0] == 400.0
         assert check.batch.attributes is batch.attributes  # nothing else copied
+
+
+@pytest.mark.parametrize("family", ["multinomial", "nested"])
+def test_utilities_that_overflow_are_refused_naming_the_situation(family):
+    model = commute_model(family)
+    batch = commute_batch(model, 5, seed=15)
+    batch.attributes[3, 2, 0] = 1e200  # rail fare, which interacts with income
+    batch.context[3, 0] = 1e200  # fare * income overflows to inf
+    assert check_batch(model, batch).ok  # finite values; only a warning for the range
+    with pytest.raises(ScoringError) as err:
+        score(model, batch)  # no NaN, no RuntimeWarning (the suite makes them errors)
+    assert [p.path for p in err.value.problems] == ["situations[3]"]
