@@ -86,6 +86,7 @@ class Sample:
     status: int
     version: str | None
     generation: int | None
+    key: str | None
 
 
 @dataclass(frozen=True)
@@ -223,6 +224,7 @@ class Samplers:
                 response.status_code,
                 response.headers.get("X-Model-Version"),
                 int(generation) if generation is not None else None,
+                body.get("routing_key"),
             )
             if response.status_code == 200:
                 answer = response.json()
@@ -438,6 +440,24 @@ def test_every_answer_comes_from_a_version_routed_at_that_time(record: Record) -
         # ... and was in force, or just replaced, when the request was sent.
         if s.generation in replaced_at:
             assert s.sent <= replaced_at[s.generation] + window, s
+
+
+def test_a_routing_key_meets_the_same_version_on_every_replica(record: Record) -> None:
+    # Sticky assignment is a pure function of (model, key, weights), so replicas agree
+    # without sharing anything but the store (DESIGN.md, "Routing and rollout").
+    versions: dict[tuple[int, str], set[str]] = {}
+    replicas: dict[tuple[int, str], set[str]] = {}
+    for s in record.samples:
+        if s.key is not None:
+            versions.setdefault((s.generation, s.key), set()).add(s.version)
+            replicas.setdefault((s.generation, s.key), set()).add(s.replica)
+    assert versions
+    for group, seen in versions.items():
+        assert len(seen) == 1, (group, seen, replicas[group])
+    # Control: the same key was answered by more than one replica, and keys split the canary.
+    assert any(len(r) > 1 for r in replicas.values())
+    canary = record.changes[0].generation
+    assert {v for (g, _), vs in versions.items() if g == canary for v in vs} == {"v1", "v2"}
 
 
 def test_a_shadow_version_never_answers(record: Record) -> None:
