@@ -108,10 +108,10 @@ def run_scenarios(model: CompiledModel, base: Batch, variants: Sequence[Variant]
         why = "the model has no attribute with role 'cost'"
 
     w = base.weights
-    base_out = _outcome(model, "base", base, base_check.warnings)
+    base_out = _outcome(model, "base", base, base_check.warnings, "base")
     outcomes = []
-    for v, (batch, warns) in zip(variants, batches, strict=True):
-        out = _outcome(model, v.name, batch, warns)
+    for i, (v, (batch, warns)) in enumerate(zip(variants, batches, strict=True)):
+        out = _outcome(model, v.name, batch, warns, f"variants[{i}]")
         dcs = total = mean = None
         if alpha is not None:
             dcs = (out.logsum - base_out.logsum) / alpha
@@ -139,10 +139,17 @@ def run_scenarios(model: CompiledModel, base: Batch, variants: Sequence[Variant]
 
 
 def _outcome(
-    model: CompiledModel, name: str, batch: Batch, warnings: tuple[BatchProblem, ...]
+    model: CompiledModel,
+    name: str,
+    batch: Batch,
+    warnings: tuple[BatchProblem, ...],
+    path: str,
 ) -> Outcome:
     available = batch.available.T
-    state = choice_probabilities(model, utilities(model, batch), available)
+    try:
+        state = choice_probabilities(model, utilities(model, batch), available)
+    except ScoringError as e:
+        raise ScoringError([Problem(f"{path}.{p.path}", p.message) for p in e.problems]) from e
     p = state.probabilities
     revenue = revenue_total = None
     if model.cost_attribute is not None:

@@ -159,3 +159,14 @@ def test_scoring_and_scenarios_leave_the_input_batch_untouched(nested):
         copies, (base.attributes, base.context, base.available, base.weights), strict=True
     ):
         np.testing.assert_array_equal(before, after)
+
+
+def test_a_variant_whose_utilities_overflow_is_refused_naming_it(mnl):
+    base = commute_batch(mnl, 5, seed=10)
+    base.context[:, 0] = 1e200  # income; rail's fare * income overflows once fare is huge
+    boom = Variant("boom", changes=(Change("rail", "fare", "set", 1e200),))
+    with pytest.raises(ScoringError) as err:
+        run_scenarios(mnl, base, [Variant("fine"), boom])
+    assert {p.path for p in err.value.problems} == {
+        f"variants[1].situations[{n}]" for n in range(5)
+    }
