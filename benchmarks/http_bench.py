@@ -237,6 +237,7 @@ def main() -> None:
     sizes = (10_000,) if args.quick else (10_000, 100_000)
     repeats = 1 if args.quick else 3
 
+    load_before = os.getloadavg()[0]
     tmp = Path(tempfile.mkdtemp(prefix="choicecast-bench-"))
     store = str(tmp / "store")
     subprocess.run(
@@ -305,7 +306,9 @@ def main() -> None:
         f"on 127.0.0.1; the load generator (same machine, so it shares the 2 cores) is "
         f"{args.threads} threads sending requests back to back for {seconds:g} s with "
         "http.client (sync workers close each connection). Model: demo `wrenmouth_commute` "
-        "(4 alternatives, 2 attributes, 2 context variables).",
+        "(4 alternatives, 2 attributes, 2 context variables). Load average of the machine "
+        f"(1 min) when the run started: {load_before:.1f}, when it ended: {os.getloadavg()[0]:.1f} "
+        "(other work on the same 2 cores slows every figure; compare the rows of one table).",
         "",
         "### One situation vs an empty Flask JSON endpoint",
         "",

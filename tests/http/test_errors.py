@@ -249,3 +249,15 @@ def test_missing_values_are_named_as_required(client):
     assert body["errors"] == [
         {"path": "$.columns.context.income", "message": "is required: the model uses it"}
     ]
+
+
+@pytest.mark.parametrize(
+    ("payload", "expected"),
+    [
+        ({"situations": []}, "$.situations"),
+        ({"columns": {}}, "$.columns"),
+        ({"situations": [dict(situation(0), weight=0.0)]}, "$.situations[*].weight"),
+    ],
+)
+def test_whole_batch_problems_name_the_batch(client, payload, expected):
+    assert paths(problem(client.post(SCORE, json=payload), 422)) == [expected]

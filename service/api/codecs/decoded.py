@@ -47,21 +47,24 @@ class Decoded:
 
 
 def rows_locator(root: str) -> Locate:
-    """``$.situations[3].attributes.bus.fare`` (``root`` is ``$.situations``)."""
+    """``$.situations[3].attributes.bus.fare`` (``root`` is ``$.situations``); a finding about
+    the batch as a whole is ``$.situations`` or ``$.situations[*].weight``."""
 
     def locate(p: BatchProblem) -> str:
-        base = root if p.situation < 0 else f"{root}[{p.situation}]"
-        return base + "".join(f".{f}" for f in p.field)
+        if p.situation < 0:
+            fields = [f for f in p.field if f != "situations"]
+            return root + ("[*]" + "".join(f".{f}" for f in fields) if fields else "")
+        return f"{root}[{p.situation}]" + "".join(f".{f}" for f in p.field)
 
     return locate
 
 
 def columns_locator(root: str) -> Locate:
-    """``$.columns.attributes.bus.fare[3]`` (``root`` is ``$.columns``)."""
+    """``$.columns.attributes.bus.fare[3]`` (``root`` is ``$.columns``); a finding about the
+    batch as a whole is ``$.columns`` or ``$.columns.weight``."""
 
     def locate(p: BatchProblem) -> str:
-        field = list(p.field) or ["situations"]
-        path = root + "".join(f".{f}" for f in field)
+        path = root + "".join(f".{f}" for f in p.field if f != "situations")
         return path if p.situation < 0 else f"{path}[{p.situation}]"
 
     return locate
