@@ -170,3 +170,31 @@ def test_a_variant_whose_utilities_overflow_is_refused_naming_it(mnl):
     assert {p.path for p in err.value.problems} == {
         f"variants[1].situations[{n}]" for n in range(5)
     }
+
+
+def test_surplus_change_matches_a_simulation_of_the_random_utility_model():
+    model = simple("multinomial")
+    base = price_batch(3, 11, p_unavailable=0.2)
+    variant = Variant("b cut, c gone", changes=(Change("b", "price", "add", -2.0),), remove=("c",))
+    out = run_scenarios(model, base, [variant]).variants[0]
+    # Source: simulation of the random utility model with iid standard Gumbel errors and
+    # common draws: Delta CS = E[max U^1 - max U^0] / alpha (Train 2009, sec. 3.5, from memory).
+    rng = np.random.default_rng(12)
+    r = 200_000
+    est = model.coefficients.as_mapping()
+    asc = np.array([est["asc_a"], est["asc_b"], est["asc_c"], 0.0])
+    price = base.attributes[:, :, 0]
+    price1 = price.copy()
+    price1[:, 1] -= 2.0
+    avail1 = base.available.copy()
+    avail1[:, 2] = False
+    for n in range(base.size):
+        e = rng.gumbel(size=(r, 4))
+        u0 = np.where(base.available[n], asc + BETA * price[n], -np.inf) + e
+        u1 = np.where(avail1[n], asc + BETA * price1[n], -np.inf) + e
+        diff = (u1.max(axis=1) - u0.max(axis=1)) / -BETA
+        bound = 5 * diff.std() / np.sqrt(r) + 1e-12
+        assert abs(diff.mean() - out.surplus_change[n]) <= bound, (
+            diff.mean(),
+            out.surplus_change[n],
+        )
