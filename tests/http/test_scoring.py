@@ -193,3 +193,42 @@ def test_scenarios_against_the_logit_formulas(client):
     shares = out["variants"][1]["shares"]
     assert shares["taxi"] == 0.0
     assert [shares["ferry"], shares["bike"]] == pytest.approx(list(p0), rel=1e-12)
+
+
+@pytest.mark.parametrize("policy", ["reject", "clip"])
+def test_range_policies_over_http(fresh_store, policy):
+    from models import coefficients, spec_dict
+    from prometheus_client import REGISTRY
+
+    from service.api import create_app
+    from service.choice import spec_from_dict
+
+    store = open_store(fresh_store)
+    store.publish("harbour", f"{policy}1", spec_from_dict(spec_dict(range_policy=policy)),
+                  coefficients("v1"), published_by="tests")  # fmt: skip
+    client = create_app(
+        {"store": fresh_store, "poll_seconds": 0, "access_log": False}
+    ).test_client()
+    path = f"/v1/models/harbour/versions/{policy}1/score"
+    high = situation(0, taxi__fare=25.0)  # the estimation range of fare is [0, 20]
+    labels = {"model": "harbour", "version": f"{policy}1"}
+    before = REGISTRY.get_sample_value("choicecast_out_of_range_total", labels) or 0.0
+    r = client.post(path, json={"situations": [situation(1), high]})
+    if policy == "reject":
+        assert r.status_code == 422
+        assert [e["path"] for e in r.get_json()["errors"]] == [
+            "$.situations[1].attributes.taxi.fare"
+        ]
+        return
+    body = r.get_json()
+    assert r.status_code == 200
+    assert [w["path"] for w in body["warnings"]] == ["$.situations[1].attributes.taxi.fare"]
+    # Clipping scores the value at the bound: the same as sending fare = 20 (common practice).
+    at_bound = client.post(path, json={"situations": [situation(0, taxi__fare=20.0)]}).get_json()
+    clipped, bound = (
+        body["situations"][1]["probabilities"],
+        at_bound["situations"][0]["probabilities"],
+    )
+    assert clipped == pytest.approx(bound, rel=1e-12)  # batch sizes may differ in the last bit
+    after = REGISTRY.get_sample_value("choicecast_out_of_range_total", labels)
+    assert after == before + 1
