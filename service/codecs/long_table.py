@@ -117,6 +117,57 @@ def _situations(column: pa.Array, problems: _Problems) -> tuple[pa.Array, np.nda
     return encoded.dictionary, encoded.indices.fill_null(0).to_numpy().astype(np.intp)
 
 
+def _complete_batch(
+    model: CompiledModel, table: pa.Table, n: int, available_row: np.ndarray, problems: _Problems
+) -> Batch:
+    """The batch of a complete, ordered table: every column reshapes to (N, J) in place."""
+    n_j = len(model.alternatives)
+    available = available_row.reshape(n, n_j).copy()
+    x = np.where(model.required, np.nan, 0.0)[None].repeat(n, axis=0)
+    for a, attr in enumerate(model.attributes):
+        if attr not in table.column_names:
+            continue
+        floats = _floats(table, attr, problems)
+        if floats is None:
+            continue
+        values, nulls = floats
+        grid = values.reshape(n, n_j)
+        needed = (model.required[:, a][None, :] & available).reshape(-1)
+        bad = ~np.isfinite(values) & needed
+        if nulls is not None:
+            problems.rows(needed & nulls, attr, f"is null but the alternative uses {attr}")
+            bad &= ~nulls
+        problems.rows(bad, attr, "must be a finite number")
+        used = model.required[:, a]
+        x[:, :, a] = grid if used.all() else np.where(used, grid, 0.0)
+
+    def per_situation(name: str) -> np.ndarray | None:
+        floats = _floats(table, name, problems)
+        if floats is None:
+            return None
+        values, nulls = floats
+        grid = values.reshape(n, n_j)
+        head = grid[:, :1]
+        same = (grid == head) | (np.isnan(grid) & np.isnan(head))
+        problems.rows(~same.reshape(-1), name, "must be constant within a situation")
+        if nulls is not None:
+            problems.rows(nulls, name, "is null")
+        return grid[:, 0].copy()
+
+    z = np.where(model.required_context_mask, np.nan, 0.0)[None].repeat(n, axis=0)
+    for c, name in enumerate(model.context):
+        if name in table.column_names and model.required_context_mask[c]:
+            column = per_situation(name)
+            if column is not None:
+                z[:, c] = column
+    weights = np.ones(n)
+    if "weight" in table.column_names:
+        column = per_situation("weight")
+        if column is not None:
+            weights = column
+    return Batch(attributes=x, context=z, available=available, weights=weights)
+
+
 def batch_from_table(
     model: CompiledModel, table: pa.Table
 ) -> tuple[pa.Array, Batch, tuple[RowProblem, ...]]:
@@ -176,7 +227,10 @@ def batch_from_table(
     # situation, alternatives in model order) is recognised in O(rows) without sorting.
     cell = sit * n_j + alt_or_0
     repeat = np.zeros(rows, dtype=bool)
-    if rows and good.all() and bool(np.all(cell[1:] > cell[:-1])):
+    ordered = bool(rows and good.all() and np.all(cell[1:] > cell[:-1]))
+    complete = ordered and rows == n * n_j
+    """Every situation offers every alternative, in model order: row r is cell r."""
+    if ordered:
         first = np.r_[True, sit[1:] != sit[:-1]]
     else:
         order = np.argsort(cell, kind="stable")
@@ -195,6 +249,9 @@ def batch_from_table(
             nulls = col.is_null().to_numpy(zero_copy_only=False)
             problems.rows(nulls, "available", "is null")
             available_row = col.fill_null(False).to_numpy(zero_copy_only=False).astype(bool)
+
+    if complete:
+        return ids, _complete_batch(model, table, n, available_row, problems), problems.result()
 
     use = good & ~repeat
     every = bool(use.all())
