@@ -196,3 +196,48 @@ def test_integer_ids_in_any_order_and_dictionary_alternatives(model):
     np.testing.assert_array_equal(batch.available[perm], ref.available)
     np.testing.assert_array_equal(batch.attributes[perm], ref.attributes)
     np.testing.assert_array_equal(batch.context[perm], ref.context)
+
+
+def complete_table(n: int, seed: int = 11) -> pa.Table:
+    """Every situation offers every alternative, in model order (the reshape path)."""
+    rng = np.random.default_rng(seed)
+    rows = n * len(ALTS)
+    return pa.table(
+        {
+            "situation": np.repeat(np.arange(n), len(ALTS)),
+            "alternative": np.tile(np.array(ALTS), n),
+            "fare": rng.uniform(1, 40, rows),
+            "minutes": rng.uniform(5, 120, rows),
+            "income": np.repeat(rng.uniform(5, 200, n), len(ALTS)),
+            "weight": np.repeat(rng.uniform(0.5, 2, n), len(ALTS)),
+            "available": rng.random(rows) > 0.1,
+        }
+    )
+
+
+def test_complete_tables_match_the_general_path(model):
+    table = complete_table(80)
+    ids, batch, problems = batch_from_table(model, table)
+    reversed_rows = table.take(np.arange(len(table))[::-1])  # forces the general path
+    ids2, batch2, problems2 = batch_from_table(model, reversed_rows)
+    assert problems == problems2 == ()
+    perm = np.argsort(ids2.to_numpy())
+    assert ids.to_pylist() == list(range(80))
+    np.testing.assert_array_equal(batch.available, batch2.available[perm])
+    np.testing.assert_array_equal(batch.attributes, batch2.attributes[perm])
+    np.testing.assert_array_equal(batch.context, batch2.context[perm])
+    np.testing.assert_array_equal(batch.weights, batch2.weights[perm])
+
+
+def test_complete_table_problems_name_rows(model):
+    table = complete_table(4)
+    income = table["income"].to_numpy().copy()
+    income[4] += 1.0  # situation 1, second row
+    fare = table["fare"].to_numpy().copy()
+    fare[6] = np.inf
+    table = table.set_column(4, "income", pa.array(income)).set_column(2, "fare", pa.array(fare))
+    available = table["available"].to_numpy(zero_copy_only=False).copy()
+    available[6] = True
+    table = table.set_column(6, "available", pa.array(available))
+    found = {(p.row, p.column) for p in batch_from_table(model, table)[2]}
+    assert found == {(4, "income"), (6, "fare")}
