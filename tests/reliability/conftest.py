@@ -9,11 +9,12 @@ from __future__ import annotations
 
 import secrets
 import shutil
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 
 import pytest
 
-from tests.support.processes import seed_demo
+from tests.support.processes import Running, seed_demo, start_loadgen
 
 
 @pytest.fixture(scope="session")
@@ -44,3 +45,29 @@ def logs(tmp_path: Path) -> Path:
     path = tmp_path / "logs"
     path.mkdir()
     return path
+
+
+@pytest.fixture()
+def load(logs: Path) -> Iterator[Callable[..., tuple[Running, Path]]]:
+    """Start the load generator in its own process: ``load(port, plan, duration=...,
+    concurrency=8)`` returns (process, report path); every one started is stopped at teardown,
+    whatever the test did."""
+    started: list[Running] = []
+
+    def start(
+        port: int, plan: Sequence[dict], *, duration: float, concurrency: int = 8
+    ) -> tuple[Running, Path]:
+        running, report = start_loadgen(
+            port,
+            plan,
+            logs,
+            duration=duration,
+            concurrency=concurrency,
+            name=f"loadgen-{len(started)}",
+        )
+        started.append(running)
+        return running, report
+
+    yield start
+    for running in started:
+        running.stop(grace=5)

@@ -19,11 +19,10 @@ from tests.support import artifacts
 from tests.support.payloads import score_plan, situations_for, verify_answers
 from tests.support.processes import (
     cli_ok,
-    load_report,
     readiness,
     run_cli,
     serving,
-    start_loadgen,
+    stop_loadgen,
     wait_for_workers,
     wait_until,
     worker_pids,
@@ -37,7 +36,7 @@ def batches_for(store_root: Path, count: int = 8) -> list[list[dict]]:
     return [situations_for(spec, 1 + i % 2, seed=300 + i) for i in range(count)]
 
 
-def test_corrupt_and_partial_versions_are_never_routed(demo_store: Path, logs: Path) -> None:
+def test_corrupt_and_partial_versions_are_never_routed(demo_store: Path, logs: Path, load) -> None:
     store_uri = str(demo_store)
     store = open_store(store_uri)
     good = artifacts.original_coefficients(store, MODEL, "v1")
@@ -56,7 +55,7 @@ def test_corrupt_and_partial_versions_are_never_routed(demo_store: Path, logs: P
 
     batches = batches_for(demo_store)
     with serving(store_uri, logs, workers=2, poll_seconds=0.2) as server:
-        loadgen, path = start_loadgen(server.port, score_plan(MODEL, batches), logs, duration=10)
+        loadgen, path = load(server.port, score_plan(MODEL, batches), duration=120)
         time.sleep(1.5)
         forced = artifacts.force_routing(store, {"v1": 50.0, "v3": 50.0}, model=MODEL)
 
@@ -81,7 +80,8 @@ def test_corrupt_and_partial_versions_are_never_routed(demo_store: Path, logs: P
         time.sleep(1.5)
         cli_ok("route", MODEL, "--live", "v1=100", "--reason", "repair", "--store", store_uri)
         assert wait_until(lambda: readiness(server.url)[0] == 200, 10), readiness(server.url)
-        report = load_report(loadgen, path, timeout=60)
+        time.sleep(1.0)  # answers from the repaired routing
+        report = stop_loadgen(loadgen, path)
 
     assert report["connection_errors"] == {}
     assert set(report["statuses"]) == {"200"}, report["bad_samples"]
@@ -93,19 +93,20 @@ def test_corrupt_and_partial_versions_are_never_routed(demo_store: Path, logs: P
 
 
 def test_killed_workers_are_replaced_and_no_wrong_answer_is_served(
-    demo_store: Path, logs: Path
+    demo_store: Path, logs: Path, load
 ) -> None:
     batches = batches_for(demo_store)
     with serving(str(demo_store), logs, workers=2, poll_seconds=1.0) as server:
         original = worker_pids(server.pid)
-        loadgen, path = start_loadgen(server.port, score_plan(MODEL, batches), logs, duration=12)
+        loadgen, path = load(server.port, score_plan(MODEL, batches), duration=120)
         killed: set[int] = set()
         for victim in original:
             time.sleep(2.5)
             os.kill(victim, signal.SIGKILL)
             killed.add(victim)
             wait_for_workers(server.pid, 2, exclude=killed, timeout=30)
-        report = load_report(loadgen, path, timeout=60)
+        time.sleep(2.0)  # served by the replacements
+        report = stop_loadgen(loadgen, path)
         assert server.alive()
         assert readiness(server.url)[0] == 200
         assert not set(worker_pids(server.pid)) & killed

@@ -18,7 +18,7 @@ from tests.support.processes import (
     cli_ok,
     load_report,
     serving,
-    start_loadgen,
+    stop_loadgen,
     worker_pids,
 )
 
@@ -43,11 +43,11 @@ def assert_no_failures(report: dict) -> None:
     assert report["threads_alive"] == 0
 
 
-def test_sustained_load_has_zero_errors(demo_store: Path, logs: Path) -> None:
+def test_sustained_load_has_zero_errors(demo_store: Path, logs: Path, load) -> None:
     batches = batches_for(demo_store)
     with serving(str(demo_store), logs, workers=2, poll_seconds=1.0) as server:
-        loadgen, path = start_loadgen(
-            server.port, score_plan(MODEL, batches), logs, duration=12, concurrency=CONCURRENCY
+        loadgen, path = load(
+            server.port, score_plan(MODEL, batches), duration=12, concurrency=CONCURRENCY
         )
         report = load_report(loadgen, path, timeout=60)
         assert server.alive()
@@ -59,7 +59,7 @@ def test_sustained_load_has_zero_errors(demo_store: Path, logs: Path) -> None:
     assert set(seen) == {"v1", "v2"}, seen
 
 
-def test_rollout_under_load_fails_no_request(demo_store: Path, logs: Path) -> None:
+def test_rollout_under_load_fails_no_request(demo_store: Path, logs: Path, load) -> None:
     store_uri = str(demo_store)
     batches = batches_for(demo_store)
     steps = [
@@ -74,14 +74,14 @@ def test_rollout_under_load_fails_no_request(demo_store: Path, logs: Path) -> No
     first = store.routing_generation(MODEL)
     with serving(store_uri, logs, workers=2, poll_seconds=0.2) as server:
         workers_before = worker_pids(server.pid)
-        loadgen, path = start_loadgen(
-            server.port, score_plan(MODEL, batches), logs, duration=16, concurrency=CONCURRENCY
+        loadgen, path = load(
+            server.port, score_plan(MODEL, batches), duration=120, concurrency=CONCURRENCY
         )
         time.sleep(1.5)
         for step in steps:
             cli_ok(*step, "--store", store_uri, "--by", "reliability-test")
             time.sleep(1.6)
-        report = load_report(loadgen, path, timeout=60)
+        report = stop_loadgen(loadgen, path)
         assert worker_pids(server.pid) == workers_before, "a worker died during the rollout"
     print("rollout:", summary(report))
     assert_no_failures(report)

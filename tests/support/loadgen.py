@@ -8,8 +8,8 @@
 value, sent as ``application/json``); ``--model`` builds one from the store instead (valid
 situations of the model's routed spec, as the reliability tests send).  Each of
 ``concurrency`` threads owns one ``http.client`` connection (reopened after an error or a
-``Connection: close``) and sends the plan's requests in turn until the duration has passed;
-a request in flight then completes.
+``Connection: close``) and sends the plan's requests in turn until the duration has passed or
+the process gets SIGTERM; a request in flight then completes and the report is written.
 
 The report counts statuses and connection errors, gives throughput and latency percentiles
 (nearest-rank, common practice), and, for JSON score responses, every distinct answer:
@@ -24,6 +24,7 @@ import argparse
 import http.client
 import json
 import math
+import signal
 import sys
 import threading
 import time
@@ -89,10 +90,11 @@ def _worker(
     record_answers: bool,
     tally: _Tally,
     timeout: float,
+    stop: threading.Event,
 ) -> None:
     conn: http.client.HTTPConnection | None = None
     k = offset
-    while time.monotonic() < deadline:
+    while time.monotonic() < deadline and not stop.is_set():
         index = k % len(plan)
         k += 1
         request = plan[index]
@@ -138,8 +140,11 @@ def run_load(
     *,
     record_answers: bool = True,
     timeout: float = 30.0,
+    stop: threading.Event | None = None,
 ) -> dict[str, Any]:
-    """Run the plan for ``duration`` seconds on ``concurrency`` threads; returns the report."""
+    """Run the plan for ``duration`` seconds (or until ``stop`` is set) on ``concurrency``
+    threads; returns the report."""
+    stop = stop or threading.Event()
     if not plan:
         raise ValueError("the plan has no requests")
     tallies = [_Tally() for _ in range(concurrency)]
@@ -147,7 +152,7 @@ def run_load(
     threads = [
         threading.Thread(
             target=_worker,
-            args=(host, port, plan, i, deadline, record_answers, tallies[i], timeout),
+            args=(host, port, plan, i, deadline, record_answers, tallies[i], timeout, stop),
             daemon=True,
         )
         for i in range(concurrency)
@@ -234,6 +239,9 @@ def main(argv: Sequence[str] | None = None) -> int:
             parser.error("--model needs --store")
         plan_data = _model_plan(args.store, args.model, args.token)
     plan = [PlannedRequest.from_dict(d) for d in plan_data]
+    stop = threading.Event()
+    # SIGTERM ends the run early (requests in flight complete) and the report is still written.
+    signal.signal(signal.SIGTERM, lambda *_: stop.set())
     report = run_load(
         args.host,
         args.port,
@@ -242,6 +250,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         args.concurrency,
         record_answers=not args.no_answers,
         timeout=args.timeout,
+        stop=stop,
     )
     text = json.dumps(report, indent=1)
     if args.out:

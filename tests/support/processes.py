@@ -421,6 +421,13 @@ def start_loadgen(
     return start(name, command, clean_env(), log_dir), report
 
 
+def stop_loadgen(running: Running, report: Path, timeout: float = 60.0) -> dict:
+    """End the load generator now (SIGTERM: requests in flight complete) and read its report."""
+    if running.alive():
+        running.process.send_signal(signal.SIGTERM)
+    return load_report(running, report, timeout)
+
+
 def load_report(running: Running, report: Path, timeout: float) -> dict:
     """Wait (bounded) for the load generator to finish and read its report."""
     try:
