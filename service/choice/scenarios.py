@@ -184,7 +184,9 @@ def _check_variants(model: CompiledModel, variants: Sequence[Variant]) -> None:
                 problems.append(Problem(f"{cp}.attribute", f"{ch.attribute!r} is unknown"))
             if ch.op not in OPS:
                 problems.append(Problem(f"{cp}.op", f"must be one of {', '.join(OPS)}"))
-            if not (isinstance(ch.value, int | float) and math.isfinite(ch.value)):
+            if isinstance(ch.value, bool) or not (
+                isinstance(ch.value, int | float) and math.isfinite(ch.value)
+            ):
                 problems.append(Problem(f"{cp}.value", "must be a finite number"))
         for key in ("remove", "add"):
             for r, alt in enumerate(getattr(v, key)):

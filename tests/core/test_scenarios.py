@@ -121,6 +121,7 @@ def test_unknown_names_in_variants_are_refused_by_field(mnl):
             remove=("ferry",),
         ),
         Variant("x", changes=(Change("car", "fare", "set", float("nan")),)),
+        Variant("y", changes=(Change("car", "fare", "add", True),)),
     ]
     with pytest.raises(ScoringError) as err:
         run_scenarios(mnl, base, variants)
@@ -131,6 +132,7 @@ def test_unknown_names_in_variants_are_refused_by_field(mnl):
         "variants[0].remove[0]",
         "variants[1].name",
         "variants[1].changes[0].value",
+        "variants[2].changes[0].value",
     }
 
 
