@@ -91,7 +91,7 @@ def _parquet_bytes(table: pa.Table) -> bytes:
 
 def _read_parquet(file: str, data: bytes) -> pa.Table:
     try:
-        return pq.read_table(pa.BufferReader(data))
+        return pq.ParquetFile(pa.BufferReader(data)).read()
     except (pa.ArrowException, OSError, ValueError) as exc:
         raise FileFormatError(file, f"not a readable Parquet file ({exc})") from None
 
@@ -116,10 +116,10 @@ def coefficients_bytes(coefficients: Coefficients) -> bytes:
 def covariance_bytes(coefficients: Coefficients) -> bytes:
     assert coefficients.covariance is not None
     cov = coefficients.covariance
-    columns = {"name": pa.array(coefficients.names, pa.string())}
-    for j, name in enumerate(coefficients.names):
-        columns[name] = pa.array(cov[:, j], pa.float64())
-    return _parquet_bytes(pa.table(columns))
+    arrays = [pa.array(coefficients.names, pa.string())]
+    arrays += [pa.array(cov[:, j], pa.float64()) for j in range(len(coefficients.names))]
+    # positional: a coefficient may itself be called "name"
+    return _parquet_bytes(pa.Table.from_arrays(arrays, names=["name", *coefficients.names]))
 
 
 def read_coefficients(data: bytes) -> tuple[tuple[str, ...], np.ndarray, np.ndarray | None]:
@@ -148,12 +148,13 @@ def read_covariance(data: bytes, names: tuple[str, ...]) -> np.ndarray:
     table = _read_parquet(COVARIANCE, data)
     if table.column_names != ["name", *names]:
         raise FileFormatError(COVARIANCE, "columns must be name followed by every coefficient")
-    if tuple(table["name"].to_pylist()) != names:
+    if tuple(table.column(0).to_pylist()) != names:
         raise FileFormatError(COVARIANCE, "rows must be the coefficients in order")
     try:
-        matrix = np.column_stack(
-            [table[n].to_numpy(zero_copy_only=False).astype(np.float64) for n in names]
-        )
+        columns = [table.column(j + 1) for j in range(len(names))]
+        if any(not pa.types.is_float64(c.type) or c.null_count for c in columns):
+            raise ValueError("every value must be a non-null float64")
+        matrix = np.column_stack([c.to_numpy().astype(np.float64) for c in columns])
     except (pa.ArrowException, ValueError, TypeError) as exc:
         raise FileFormatError(COVARIANCE, f"values must be float64 ({exc})") from None
     return matrix.reshape(len(names), len(names))

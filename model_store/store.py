@@ -12,6 +12,8 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
+import numpy as np
+
 from model_store import artifact, routing
 from model_store.artifact import COEFFICIENTS, COVARIANCE, MANIFEST, FileFormatError
 from model_store.backends.base import Backend, KeyExists, KeyMissing
@@ -67,6 +69,21 @@ def check_name(kind: str, name: str) -> None:
 
 def _version_prefix(model: str, version: str) -> str:
     return f"models/{model}/versions/{version}/"
+
+
+def _check_round_trip(blobs: Mapping[str, bytes], coefficients: Coefficients) -> None:
+    """Decode the files about to be written and compare with the values (before any write)."""
+    names, est, se = artifact.read_coefficients(blobs[COEFFICIENTS])
+    same = names == coefficients.names and np.array_equal(est, coefficients.estimates)
+    if coefficients.std_errors is not None:
+        same = (
+            same and se is not None and np.array_equal(se, coefficients.std_errors, equal_nan=True)
+        )
+    if COVARIANCE in blobs:
+        cov = artifact.read_covariance(blobs[COVARIANCE], names)
+        same = same and np.array_equal(cov, coefficients.covariance)
+    if not same:
+        raise StoreError("internal: the encoded coefficient files do not decode to the values")
 
 
 class Store:
@@ -194,6 +211,7 @@ class Store:
         blobs = {COEFFICIENTS: artifact.coefficients_bytes(coefficients)}
         if coefficients.covariance is not None:
             blobs[COVARIANCE] = artifact.covariance_bytes(coefficients)
+        _check_round_trip(blobs, coefficients)
         for name, data in blobs.items():
             self.backend.put(prefix + name, data)
         manifest = artifact.build_manifest(

@@ -187,3 +187,26 @@ def test_names_and_spec_name_are_checked(store: Store, ferry_spec):
         publish_ferry(store, "v1", parent="v0")
     with pytest.raises(SpecError, match=r"estimation\.sample_size"):
         publish_ferry(store, "v1", estimation={"sample_size": -3})
+
+
+def test_a_coefficient_called_name_round_trips(store: Store):
+    spec = spec_from_dict(
+        {
+            "name": "toll",
+            "family": "binary",
+            "alternatives": [{"id": "pay"}, {"id": "detour"}],
+            "attributes": [{"name": "fee", "role": "cost"}],
+            "utilities": {
+                "pay": [{"coefficient": "name"}, {"coefficient": "b_fee", "attribute": "fee"}],
+                "detour": [{"coefficient": "b_fee", "attribute": "fee"}],
+            },
+        }
+    )
+    cov = np.array([[0.01, 0.001], [0.001, 0.02]])
+    coefficients = type(ferry_coefficients())(
+        names=("name", "b_fee"), estimates=np.array([0.1, -0.2]), covariance=cov
+    )
+    store.publish("toll", "v1", spec, coefficients, published_by="t")
+    loaded = store.load_version("toll", "v1")
+    np.testing.assert_array_equal(loaded.coefficients.covariance, cov)
+    assert loaded.coefficients.names == ("name", "b_fee")
