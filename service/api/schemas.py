@@ -424,12 +424,24 @@ class ModelListSchema(Schema):
     models = fields.List(fields.Nested(ModelSummarySchema), required=True)
 
 
+class WillingnessToPaySchema(Schema):
+    coefficient = fields.String(required=True)
+    value = FiniteNumber(required=True)
+    std_error = FiniteNumber(allow_none=True)
+
+
 class VersionDetailSchema(Schema):
     model = fields.String(required=True)
     version = fields.String(required=True)
     spec = fields.Dict(required=True)
     coefficients = fields.List(fields.Dict(), required=True)
     has_covariance = fields.Boolean(required=True)
+    willingness_to_pay = fields.List(
+        fields.Nested(WillingnessToPaySchema),
+        allow_none=True,
+        metadata={"description": "-beta_k / beta_cost per coefficient, delta-method std errors"},
+    )
+    willingness_to_pay_unavailable = fields.String(allow_none=True)
     manifest = fields.Dict(allow_none=True)
 
 

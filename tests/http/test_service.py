@@ -199,3 +199,24 @@ def test_pick_follows_cumulative_normalised_weights():
     assert route("harbour", weights, "k").version == route("harbour", weights, "k").version
     with pytest.raises(ValueError):
         pick({"v1": 0.0}, 0.5)
+
+
+def test_version_detail_gives_willingness_to_pay(client):
+    import numpy as np
+    from models import coefficients
+
+    body = VersionDetailSchema().load(client.get("/v1/models/harbour/versions/v1").get_json())
+    wtp = {w["coefficient"]: w for w in body["willingness_to_pay"]}
+    coefs = coefficients("v1")
+    names = list(coefs.names)
+    c = names.index("b_fare")
+    for name in ("b_time", "asc_taxi"):
+        k = names.index(name)
+        bk, bc = coefs.estimates[k], coefs.estimates[c]
+        # WTP = -beta_k / beta_cost; delta-method variance g' S g with
+        # g = (-1/beta_cost, beta_k/beta_cost^2) (common practice; from memory).
+        g = np.array([-1 / bc, bk / bc**2])
+        se = float(np.sqrt(g @ coefs.covariance[np.ix_([k, c], [k, c])] @ g))
+        assert wtp[name]["value"] == pytest.approx(-bk / bc, rel=1e-12)
+        assert wtp[name]["std_error"] == pytest.approx(se, rel=1e-12)
+    assert "b_fare" not in wtp

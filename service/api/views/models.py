@@ -7,6 +7,7 @@ from typing import Any
 
 from flask import Blueprint, Response, g, jsonify
 
+from service.choice import ScoringError, willingness_to_pay
 from service.choice.spec import NAME_PATTERN, spec_to_dict
 
 from .. import auth
@@ -56,7 +57,7 @@ def summary(name: str) -> dict[str, Any]:
     if routing is not None:
         # Spec summary of the version with the largest live weight.
         version = max(routing.live, key=lambda v: (routing.live[v], v))
-        loaded = reg.get(name, version)
+        loaded = load(name, version)
         spec = spec_to_dict(loaded.spec)
         out.update(
             family=spec["family"],
@@ -96,6 +97,14 @@ def show_version(name: str, version: str) -> Response:
         ):
             row["std_error"] = float(coefficients.std_errors[i])
         rows.append(row)
+    try:
+        wtp = [
+            {"coefficient": w.coefficient, "value": w.value, "std_error": w.std_error}
+            for w in willingness_to_pay(loaded.compiled)
+        ]
+        wtp_unavailable = None
+    except ScoringError as exc:
+        wtp, wtp_unavailable = None, "; ".join(p.message for p in exc.problems)
     return jsonify(
         {
             "model": name,
@@ -103,6 +112,8 @@ def show_version(name: str, version: str) -> Response:
             "spec": spec_to_dict(loaded.spec),
             "coefficients": rows,
             "has_covariance": coefficients.covariance is not None,
+            "willingness_to_pay": wtp,
+            "willingness_to_pay_unavailable": wtp_unavailable,
             "manifest": plain(loaded.manifest),
         }
     )
