@@ -5,4 +5,4 @@ installed, non-editable package runs with the same ones; override any of them be
 """
 
 from service.api.gunicorn_config import *  # noqa: F403
-from service.api.gunicorn_config import child_exit, post_worker_init  # noqa: F401  (hooks)
+from service.api.gunicorn_config import child_exit, on_exit, post_worker_init  # noqa: F401  (hooks)

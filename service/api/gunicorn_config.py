@@ -48,3 +48,12 @@ def post_worker_init(worker) -> None:
     registry = getattr(worker.wsgi, "extensions", {}).get("choicecast.registry")
     if registry is not None:
         registry.ensure_poller()
+
+
+def on_exit(server) -> None:
+    """Remove the metrics directory ``choicecast serve`` created for this server."""
+    owned = os.environ.get("CHOICECAST_OWNED_METRICS_DIR")
+    if owned and owned == os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
+        import shutil
+
+        shutil.rmtree(owned, ignore_errors=True)

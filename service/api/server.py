@@ -9,6 +9,7 @@ from pathlib import Path
 from typing import Any
 
 DEFAULT_HOST = "127.0.0.1"
+OWNED_METRICS_DIR = "CHOICECAST_OWNED_METRICS_DIR"
 DEFAULT_PORT = 8000
 
 # Options ``run`` accepts besides the bind and workers; each becomes CHOICECAST_<NAME>.
@@ -65,6 +66,7 @@ def environment(store_uri: str | None, options: dict[str, Any]) -> dict[str, str
             env["CHOICECAST_" + name.upper()] = str(value)
     if not env.get("PROMETHEUS_MULTIPROC_DIR"):
         env["PROMETHEUS_MULTIPROC_DIR"] = tempfile.mkdtemp(prefix="choicecast-metrics-")
+        env[OWNED_METRICS_DIR] = env["PROMETHEUS_MULTIPROC_DIR"]  # removed when gunicorn exits
     else:
         # Values of a previous run would be merged into this one's: start empty.
         directory = Path(env["PROMETHEUS_MULTIPROC_DIR"])
