@@ -50,7 +50,7 @@ def ferry_utilities(beta: dict[str, float], path: Path) -> tuple[np.ndarray, np.
 
 
 def logit_shares(v: np.ndarray, weights: np.ndarray) -> np.ndarray:
-    """P_nj = exp(V_nj) / sum_k exp(V_nk) (Train 2009, eq. 3.6); shares by sample
+    """P_nj = exp(V_nj) / sum_k exp(V_nk) (Train 2009, eq. 3.6; from memory); shares by sample
     enumeration S_j = sum_n w_n P_nj / sum_n w_n (Train 2009, sec. 3.6.1; from memory)."""
     e = np.exp(v - v.max(axis=1, keepdims=True))
     p = e / e.sum(axis=1, keepdims=True)

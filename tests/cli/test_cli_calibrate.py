@@ -41,7 +41,7 @@ def test_mnl_constants_match_targets_and_an_independent_solution(cli, ferry_file
         zip(detail["coefficients"]["names"], detail["coefficients"]["estimates"], strict=True)
     )
 
-    # the calibrated version reproduces the targets (Train 2009, eq. 3.6 by sample enumeration)
+    # the calibrated version reproduces the targets (Train 2009, eq. 3.6, from memory; by sample enumeration)
     v, w = ferry_utilities(beta, population)
     np.testing.assert_allclose(logit_shares(v, w), list(TARGETS.values()), atol=2e-6)
 
@@ -77,7 +77,7 @@ NESTED = {
 
 
 def nested_shares(beta: dict[str, float], fare: np.ndarray) -> np.ndarray:
-    """Nested logit (Train 2009, eq. 4.2): P_i = exp(V_i/l_k) (sum_{j in k} exp(V_j/l_k))^(l_k-1)
+    """Nested logit (Train 2009, eq. 4.2; from memory): P_i = exp(V_i/l_k) (sum_{j in k} exp(V_j/l_k))^(l_k-1)
     / sum_l (sum_{j in l} exp(V_j/l_l))^l_l; unweighted shares."""
     lam = beta["lambda_boats"]
     v_launch = beta["asc_launch"] + beta["b_fare"] * fare[:, 0]

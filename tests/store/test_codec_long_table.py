@@ -76,7 +76,7 @@ def test_row_order_does_not_matter_and_probabilities_match_the_logit_formula(mod
     checked = check_batch(model, batch)
     assert checked.ok
     p = score(model, checked.batch, ScoreOptions()).probabilities
-    # P_ni = exp(V_ni) / sum_j exp(V_nj) over the offered alternatives (Train 2009, eq. 3.6)
+    # P_ni = exp(V_ni) / sum_j exp(V_nj) over the offered alternatives (Train 2009, eq. 3.6; from memory)
     beta = dict(zip(ferry_coefficients().names, ferry_coefficients().estimates, strict=True))
     rows = shuffled.to_pylist()
     for n, sid in enumerate(ids.to_pylist()):

@@ -162,7 +162,7 @@ def nested_spec(tmp_path, scale_value: float):
 
 @pytest.mark.parametrize("scale", [0.0, -0.5, 1.3])
 def test_nest_scale_outside_unit_interval(tmp_path, scale):
-    # (0, 1] is the range consistent with utility maximisation (Train 2009, sec. 4.2.1)
+    # (0, 1] is the range consistent with utility maximisation (Train 2009, sec. 4.2.1; from memory)
     spec, coefficients, _ = read_model_inputs(*nested_spec(tmp_path, scale))
     with pytest.raises(SpecError) as info:
         validate_model(spec, coefficients)
