@@ -363,7 +363,10 @@ def parse_live(items: Sequence[str]) -> dict[str, float]:
     return live
 
 
-def _print_state(state: RoutingState, headline: str) -> None:
+def _print_state(state: RoutingState, headline: str, as_json: bool = False) -> None:
+    if as_json:
+        emit_json(state.as_dict())
+        return
     print(f"{headline}: generation {state.generation}")
     print(f"  live    {_live_text(state)}")
     print(f"  shadow  {state.shadow or '-'}")
@@ -380,7 +383,7 @@ def cmd_route(args: argparse.Namespace) -> int:
         changed_by=operator(args.by),
         expected_generation=args.expect_generation,
     )
-    _print_state(state, f"routed {state.model}")
+    _print_state(state, f"routed {state.model}", args.json)
     return 0
 
 
@@ -393,7 +396,7 @@ def cmd_promote(args: argparse.Namespace) -> int:
         reason=args.reason,
         expected_generation=args.expect_generation,
     )
-    _print_state(state, f"promoted {state.model} {args.version}")
+    _print_state(state, f"promoted {state.model} {args.version}", args.json)
     return 0
 
 
@@ -406,7 +409,7 @@ def cmd_rollback(args: argparse.Namespace) -> int:
         expected_generation=args.expect_generation,
     )
     headline = f"rolled {state.model} back to the state of generation {state.restored_generation}"
-    _print_state(state, headline)
+    _print_state(state, headline, args.json)
     return 0
 
 
@@ -689,17 +692,24 @@ def build_parser() -> argparse.ArgumentParser:
     p = add("show", cmd_show, "a model's routing, or one version in detail", [store, machine])
     p.add_argument("model")
     p.add_argument("version", nargs="?")
-    p = add("route", cmd_route, "set live weights (canary) and the shadow", [store, who, guard])
+    p = add(
+        "route", cmd_route, "set live weights (canary) and the shadow", [store, who, guard, machine]
+    )
     p.add_argument("model")
     p.add_argument("--live", nargs="+", required=True, metavar="VERSION=WEIGHT")
     p.add_argument("--shadow", help="a version scored alongside, never answering")
     p.add_argument("--reason", required=True, help="why (recorded in the history)")
-    p = add("promote", cmd_promote, "route 100%% of traffic to a version", [store, who, guard])
+    p = add(
+        "promote", cmd_promote, "route 100%% of traffic to a version", [store, who, guard, machine]
+    )
     p.add_argument("model")
     p.add_argument("version")
     p.add_argument("--reason")
     p = add(
-        "rollback", cmd_rollback, "restore the routing before the current one", [store, who, guard]
+        "rollback",
+        cmd_rollback,
+        "restore the routing before the current one",
+        [store, who, guard, machine],
     )
     p.add_argument("model")
     p.add_argument("--reason")

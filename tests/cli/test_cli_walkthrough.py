@@ -79,7 +79,9 @@ def test_rollout_walkthrough(cli, ferry_files, tmp_path):
     text = cli("compare", "ferry", "v1", "v2", "--population", str(population)).out
     assert "share v1" in text and "aggregate own elasticity with respect to fare" in text
 
-    assert cli("promote", "ferry", "v2").code == 0
+    promoted = cli("promote", "ferry", "v2", "--json")
+    assert promoted.code == 0, promoted.err
+    assert promoted.json()["live"] == {"v2": 1.0} and promoted.json()["generation"] == 2
     result = cli("rollback", "ferry", "--reason", "fast boat share too high", "--by", "cy")
     assert result.code == 0, result.err
     assert "back to the state of generation 1" in result.out
