@@ -797,6 +797,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         _error("interrupted")
         return 130
+    except BrokenPipeError:  # the reader went away (e.g. `| head`): stop quietly
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 0
 
 
 if __name__ == "__main__":
