@@ -10,10 +10,13 @@ large batch would fail here).
 
 from __future__ import annotations
 
+import contextlib
+import http.client
+import json
+import os
 import runpy
 import signal
 import threading
-import time
 from pathlib import Path
 
 import pytest
@@ -23,11 +26,20 @@ from containerfile_reader import REPO
 from model_store.demo import VERSIONS as DEMO_VERSIONS
 from service.choice.spec import spec_from_dict
 from tests.support.payloads import situations_for
-from tests.support.processes import seed_demo, start_service, wait_until
+from tests.support.processes import seed_demo, start_service, wait_until, worker_pids
 
 pytestmark = pytest.mark.slow
 MODEL = "wrenmouth_commute"
 SITUATIONS = 20_000  # a batch that takes a few seconds as JSON rows on this machine
+
+
+def sockets_of(pid: int) -> int:
+    """How many sockets the process has open (from /proc/PID/fd)."""
+    count = 0
+    for fd in Path(f"/proc/{pid}/fd").iterdir():
+        with contextlib.suppress(OSError):
+            count += os.readlink(fd).startswith("socket:")
+    return count
 
 
 def test_sigterm_lets_the_in_flight_request_finish(tmp_path: Path) -> None:
@@ -36,23 +48,35 @@ def test_sigterm_lets_the_in_flight_request_finish(tmp_path: Path) -> None:
     spec = spec_from_dict(next(d.spec for d in DEMO_VERSIONS if d.model == MODEL))
     body = {"situations": situations_for(spec, SITUATIONS, seed=3)}
     server = start_service(store, tmp_path / "logs", workers=1, poll_seconds=1.0, name="drain")
+    payload = json.dumps(body).encode()
+    worker = worker_pids(server.pid)[0]
+    idle_sockets = sockets_of(worker)
     outcome: dict[str, object] = {}
 
     def call() -> None:
-        started = time.monotonic()
+        connection = http.client.HTTPConnection("127.0.0.1", server.port, timeout=60)
         try:
-            response = requests.post(f"{server.url}/v1/models/{MODEL}/score", json=body, timeout=60)
-            outcome["status"] = response.status_code
-            outcome["situations"] = len(response.json().get("situations", []))
-        except requests.RequestException as exc:
+            connection.request(
+                "POST",
+                f"/v1/models/{MODEL}/score",
+                body=payload,
+                headers={"Content-Type": "application/json"},
+            )
+            response = connection.getresponse()
+            outcome["status"] = response.status
+            outcome["situations"] = len(json.loads(response.read()).get("situations", []))
+        except (OSError, http.client.HTTPException, ValueError) as exc:
             outcome["error"] = repr(exc)
-        outcome["seconds"] = time.monotonic() - started
+        finally:
+            connection.close()
 
     try:
         caller = threading.Thread(target=call, daemon=True)
         caller.start()
-        # SIGTERM once the worker is busy with the request (its body is being read or scored).
-        time.sleep(0.3)
+        # SIGTERM once the worker has accepted the connection (a new socket among its files),
+        # i.e. the request is in flight; connections not yet accepted are the preStop sleep's
+        # job (no new ones arrive once the pod has left the endpoints).
+        assert wait_until(lambda: sockets_of(worker) > idle_sockets, 30, interval=0.01)
         assert caller.is_alive(), f"the request finished too soon to test: {outcome}"
         server.process.send_signal(signal.SIGTERM)
         caller.join(timeout=graceful + 30)
