@@ -165,8 +165,21 @@ def post(
         conn.close()
 
 
-def load(port: int, path: str, body: bytes, seconds: float, threads: int) -> dict[str, float]:
-    """Back-to-back requests from ``threads`` threads for ``seconds``: rate and latencies."""
+def cpu_seconds(pids: list[int]) -> float:
+    """User + system CPU time consumed so far by ``pids`` (from /proc/<pid>/stat)."""
+    total = 0
+    for pid in pids:
+        fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+        total += int(fields[11]) + int(fields[12])
+    return total / os.sysconf("SC_CLK_TCK")
+
+
+def load(
+    port: int, path: str, body: bytes, seconds: float, threads: int, pids: list[int] = ()
+) -> dict[str, float]:
+    """Back-to-back requests from ``threads`` threads for ``seconds``: rate, latencies and the
+    server's CPU time per request (``pids``: the gunicorn master and workers)."""
+    cpu_before = cpu_seconds(list(pids))
     latencies: list[float] = []
     errors = [0]
     stop = time.monotonic() + seconds
@@ -191,8 +204,10 @@ def load(port: int, path: str, body: bytes, seconds: float, threads: int) -> dic
     for t in pool:
         t.join()
     elapsed = time.monotonic() - started
+    cpu = cpu_seconds(list(pids)) - cpu_before
     lat = np.array(latencies) * 1000
     return {
+        "cpu_us": cpu / max(len(lat), 1) * 1e6,
         "requests": len(lat),
         "errors": errors[0],
         "rps": len(lat) / elapsed,
@@ -251,13 +266,15 @@ def main() -> None:
     pinned = f"/v1/models/{MODEL}/versions/v1/score"
 
     port = free_port()
-    with empty_server(port):
+    with empty_server(port) as master:
         load(port, "/empty", one, 1.0, args.threads)  # warm-up
-        empty_stats = load(port, "/empty", one, seconds, args.threads)
+        pids = [master, *worker_pids(master)]
+        empty_stats = load(port, "/empty", one, seconds, args.threads, pids)
     port = free_port()
-    with service(store, port):
+    with service(store, port) as master:
         load(port, routed, one, 1.0, args.threads)
-        service_stats = load(port, routed, one, seconds, args.threads)
+        pids = [master, *worker_pids(master)]
+        service_stats = load(port, routed, one, seconds, args.threads, pids)
 
     batch: dict[tuple[str, int], dict[str, float]] = {}
     for n in sizes:
@@ -297,6 +314,7 @@ def main() -> None:
             peak[f"{form} idle"] = idle
 
     ratio = service_stats["rps"] / empty_stats["rps"]
+    cpu_ratio = empty_stats["cpu_us"] / service_stats["cpu_us"]
     lines = [
         "## HTTP service",
         "",
@@ -312,14 +330,18 @@ def main() -> None:
         "",
         "### One situation vs an empty Flask JSON endpoint",
         "",
-        "| endpoint | requests/s | p50 ms | p99 ms | errors |",
-        "| --- | ---: | ---: | ---: | ---: |",
+        "| endpoint | requests/s | p50 ms | p99 ms | server CPU us / request | errors |",
+        "| --- | ---: | ---: | ---: | ---: | ---: |",
         f"| empty Flask JSON endpoint (POST, parses the same body) | {empty_stats['rps']:.0f} "
-        f"| {empty_stats['p50_ms']:.2f} | {empty_stats['p99_ms']:.2f} | {empty_stats['errors']} |",
+        f"| {empty_stats['p50_ms']:.2f} | {empty_stats['p99_ms']:.2f} "
+        f"| {empty_stats['cpu_us']:.0f} | {empty_stats['errors']} |",
         f"| `POST {routed}` (routed, probabilities, access log on) | {service_stats['rps']:.0f} "
-        f"| {service_stats['p50_ms']:.2f} | {service_stats['p99_ms']:.2f} | {service_stats['errors']} |",
+        f"| {service_stats['p50_ms']:.2f} | {service_stats['p99_ms']:.2f} "
+        f"| {service_stats['cpu_us']:.0f} | {service_stats['errors']} |",
         "",
-        f"Throughput ratio service / empty endpoint: **{ratio:.2f}** (target >= 0.7).",
+        f"Throughput ratio service / empty endpoint: **{ratio:.2f}** (target >= 0.7). Ratio of "
+        f"server CPU per request (empty / service), the throughput ratio the servers would "
+        f"reach with the cores to themselves: **{cpu_ratio:.2f}**.",
         "",
         "### Per-situation cost of a batch (pinned version, probabilities)",
         "",

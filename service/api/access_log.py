@@ -66,21 +66,24 @@ def configure_logging(level: str) -> None:
 def install(app: Flask, log_requests: bool) -> None:
     @app.before_request
     def _start() -> None:
-        g.started = time.perf_counter()
+        ctx = g._get_current_object()  # type: ignore[attr-defined]
+        ctx.started = time.perf_counter()
         offered = request.headers.get("X-Request-ID", "")
-        g.request_id = offered if REQUEST_ID.match(offered) else uuid.uuid4().hex
+        ctx.request_id = offered if REQUEST_ID.match(offered) else uuid.uuid4().hex
 
     @app.after_request
     def _finish(response: Response) -> Response:
-        started = g.get("started", time.perf_counter())
-        elapsed = time.perf_counter() - started
-        request_id = g.get("request_id") or uuid.uuid4().hex
+        # Plain objects once: every proxied lookup of ``g``/``request`` costs a context lookup.
+        ctx = g._get_current_object().__dict__  # type: ignore[attr-defined]
+        req = request._get_current_object()  # type: ignore[attr-defined]
+        elapsed = time.perf_counter() - ctx.get("started", time.perf_counter())
+        request_id = ctx.get("request_id") or uuid.uuid4().hex
         response.headers["X-Request-ID"] = request_id
-        route = request.url_rule.rule if request.url_rule is not None else "unmatched"
-        model = g.get("model", "")
-        version = g.get("version", "")
+        rule = req.url_rule
+        route = rule.rule if rule is not None else "unmatched"
+        model = ctx.get("model", "")
         status = response.status_code
-        metrics.REQUESTS.labels(model, version, route, str(status)).inc()
+        metrics.REQUESTS.labels(model, ctx.get("version", ""), route, str(status)).inc()
         metrics.LATENCY.labels(route).observe(elapsed)
         if status in (400, 413, 415, 422):
             metrics.VALIDATION_FAILURES.labels(model, str(status)).inc()
@@ -89,18 +92,19 @@ def install(app: Flask, log_requests: bool) -> None:
                 "ts": round(time.time(), 3),
                 "type": "access",
                 "request_id": request_id,
-                "method": request.method,
-                "path": request.path,
+                "method": req.method,
+                "path": req.path,
                 "route": route,
                 "status": status,
                 "duration_ms": round(elapsed * 1000, 3),
-                "bytes_in": request.content_length or 0,
-                "bytes_out": response.calculate_content_length() or 0,
-                "remote": request.remote_addr,
+                "bytes_in": req.content_length or 0,
+                "bytes_out": response.content_length or 0,
+                "remote": req.remote_addr,
                 "pid": os.getpid(),
             }
             for key in ("model", "version", "decision", "generation", "situations", "problem"):
-                if g.get(key) is not None:
-                    entry[key] = g.get(key)
+                value = ctx.get(key)
+                if value is not None:
+                    entry[key] = value
             access.info(entry)
         return response
