@@ -91,6 +91,7 @@ def fuzz_target(demo_store: Path, logs: Path, tokens: dict[str, str]):
             '[parameters]\n"path.name" = "wrenmouth_commute"\n"path.version" = "v1"\n',
         ),
     ],
+    ids=["generated-names", "pinned-names"],
 )
 def test_every_operation_survives_fuzzing(
     fuzz_target, tokens: dict[str, str], tmp_path: Path, name: str, config: str | None
