@@ -2,8 +2,8 @@
 
 ``put_new`` is a PutObject with ``If-None-Match: *``: the server refuses it with 412 when the
 key exists (S3 conditional writes, AWS documentation "Conditional requests"). Objects are
-written whole, so readers never see a partial object. A boto3 client is thread-safe; open the
-store in each process (after a fork), never share one across processes.
+written whole, so readers never see a partial object. A boto3 client is thread-safe and is
+kept per process: a store opened before a fork gets its own client in the child.
 """
 
 from __future__ import annotations
@@ -66,7 +66,13 @@ class S3Backend:
         self.prefix = prefix.strip("/")
         self.endpoint_url = endpoint_url
         self.uri = f"s3://{bucket}/{self.prefix}" + (f" at {endpoint_url}" if endpoint_url else "")
-        self.client = _client(endpoint_url)
+        _client(endpoint_url)  # build it now: configuration errors surface at open
+
+    @property
+    def client(self):
+        """This process's client (looked up per call, so a store opened before a fork gets
+        a fresh client and connection pool in the child)."""
+        return _client(self.endpoint_url)
 
     def _key(self, key: str) -> str:
         check_key(key)

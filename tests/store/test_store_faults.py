@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import json
 import time
 
@@ -12,7 +13,7 @@ from store_cases import FERRY_NAMES, FERRY_SPEC, publish_ferry
 from model_store import StoreError, StoreUnavailable, open_store
 from model_store.inputs import read_coefficients, read_covariance, read_model_inputs
 from service.choice.spec import SpecError, validate_model
-from tests.store.s3_server import free_port
+from tests.store.s3_server import BUCKET, free_port
 
 
 def write(tmp_path, name: str, text: str):
@@ -254,3 +255,38 @@ def test_store_uri_defaults(monkeypatch, tmp_path):
     monkeypatch.setenv("CHOICECAST_STORE", str(tmp_path / "s"))
     assert open_store().uri == str(tmp_path / "s")
     assert open_store(f"file://{tmp_path}/t").uri == f"{tmp_path}/t"
+
+
+def test_s3_store_opened_before_a_fork_works_in_the_child(s3_endpoint):
+    """A gunicorn-style fork after opening: the child gets its own client (boto3 clients and
+    their connection pools must not be shared across processes; boto3 documentation)."""
+    import os
+
+    store = open_store(f"s3://{BUCKET}/fork-{os.getpid()}", endpoint_url=s3_endpoint)
+    publish_ferry(store, "v1")
+    parent_client = store.backend.client
+    read, write = os.pipe()
+    pid = os.fork()
+    if pid == 0:  # child: report and leave at once, whatever happens
+        try:
+            fresh = store.backend.client is not parent_client
+            ok = fresh and store.list_versions("ferry") == ["v1"]
+            os.write(write, b"ok" if ok else b"bad")
+        finally:
+            os._exit(0)
+    os.close(write)
+    reaped = False
+    try:
+        deadline = time.monotonic() + 60
+        while not reaped:
+            reaped = os.waitpid(pid, os.WNOHANG) != (0, 0)
+            assert reaped or time.monotonic() < deadline, "the child did not finish"
+            time.sleep(0.02)
+        assert os.read(read, 10) == b"ok"
+    finally:
+        os.close(read)
+        if not reaped:  # only our own child, and only while it is still ours
+            with contextlib.suppress(ChildProcessError, ProcessLookupError):
+                os.kill(pid, 9)
+                os.waitpid(pid, 0)
+    assert store.backend.client is parent_client
