@@ -190,13 +190,16 @@ def run_score(
         std_errors=outputs.std_errors,
     )
     try:
-        result = score(model, check.batch, options)
+        # Extreme inputs may overflow inside the core; the result is checked for finiteness
+        # below and refused with 422, so numpy's warnings would only be noise.
+        with np.errstate(all="ignore"):
+            result = score(model, check.batch, options)
     except ScoringError as exc:
         raise unprocessable(
             "the options cannot be served by this model version",
             [FieldError(options_path(p.path, form), p.message) for p in exc.problems],
         ) from None
-    require_finite(result, decoded.ids)
+    require_finite(result, decoded.locate)
     return result, check, decoded.errors(check.warnings)
 
 
@@ -217,7 +220,8 @@ def shadow_score(
         check = check_batch(model, decoded.batch)
         if check.problems or decoded.problems:
             raise ValueError(f"{check.problem_count} problem(s) in the shadow check")
-        result = score(model, check.batch, ScoreOptions(probabilities=True, logsum=False))
+        with np.errstate(all="ignore"):
+            result = score(model, check.batch, ScoreOptions(probabilities=True, logsum=False))
         shared = [a for a in live_alternatives if a in model.alternatives]
         live_idx = [live_alternatives.index(a) for a in shared]
         shadow_idx = [model.alternatives.index(a) for a in shared]

@@ -8,13 +8,13 @@ elasticity of P_i with respect to the attribute of alternative k; of a context v
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
-from service.choice import ScoreResult
+from service.choice import BatchProblem, ScoreResult
 
 from ..problems import FieldError, unprocessable
 
@@ -44,7 +44,7 @@ def outputs_from(data: dict[str, Any]) -> Outputs:
     )
 
 
-def require_finite(result: ScoreResult, ids: Sequence[str]) -> None:
+def require_finite(result: ScoreResult, locate: Callable[[BatchProblem], str]) -> None:
     """Refuse (422) rather than emit a non-finite number; names the situations."""
     arrays: list[tuple[str, np.ndarray | None]] = [
         ("probabilities", result.probabilities),
@@ -64,13 +64,16 @@ def require_finite(result: ScoreResult, ids: Sequence[str]) -> None:
             continue
         bad = ~np.isfinite(arr.reshape(arr.shape[0], -1)).all(axis=1)
         for i in np.flatnonzero(bad)[:20]:
-            errors.append(FieldError(f"situation {ids[i]}", f"{name} is not finite"))
+            where = locate(BatchProblem(int(i), (), ""))
+            errors.append(FieldError(where, f"gives a {name} that is not a finite number"))
     if result.aggregate is not None:
         if not np.isfinite(result.aggregate.shares).all():
-            errors.append(FieldError("aggregate", "shares are not finite"))
+            errors.append(FieldError("$", "gives aggregate shares that are not finite"))
         for name, e in result.aggregate.elasticities.items():
             if not np.isfinite(e).all():
-                errors.append(FieldError(f"aggregate.elasticities.{name}", "not finite"))
+                errors.append(
+                    FieldError("$", f"gives aggregate elasticities of {name} that are not finite")
+                )
     if errors:
         raise unprocessable("the inputs give results that are not finite numbers", errors)
 

@@ -93,7 +93,8 @@ def scenarios(name: str) -> Response:
         for v in body["variants"]
     ]
     try:
-        result = run_scenarios(model, decoded.batch, variants)
+        with np.errstate(all="ignore"):  # non-finite results are refused below (422)
+            result = run_scenarios(model, decoded.batch, variants)
     except ScoringError as exc:
         raise unprocessable(
             "the scenario cannot be scored",
