@@ -180,3 +180,21 @@ def test_existing_new_version_and_missing_population(cli, ferry_files, tmp_path)
         "--population", str(population), "--new-version", "v1",
     )  # fmt: skip
     assert result.code == 2 and "already published" in result.err
+
+
+def test_validate_reports_nests_with_their_scales(cli, tmp_path):
+    spec = tmp_path / "harbour.json"
+    spec.write_text(json.dumps(NESTED))
+    coefs = tmp_path / "harbour.csv"
+    coefs.write_text(
+        "name,estimate\nasc_launch,0.2\nb_fare,-0.3\nasc_barge,-0.1\nlambda_boats,0.4\nlambda_foot,1\n"
+    )
+    result = cli("validate", str(spec), "--coefficients", str(coefs), store=False)
+    assert result.code == 0, result.err
+    nests = result.out.split("\nnests\n", 1)[1]
+    assert "boats  lambda_boats    0.4  launch, barge" in nests
+    assert "covariance  none" in result.out
+    result = cli(
+        "publish", str(spec), "--coefficients", str(coefs), "--version", "v1", "--model", "ferry"
+    )
+    assert result.code == 2 and "the spec is named 'harbour', not 'ferry'" in result.err
