@@ -196,6 +196,15 @@ class Registry:
                 if previous is not None and previous.generation == generations[name]:
                     routes[name] = previous
                     continue
+                if previous is not None and generations[name] < previous.generation:
+                    # The history is append-only: an older generation means lost records (a
+                    # store restored from an older copy). Keep the newest state seen.
+                    problems.append(
+                        f"{name}: the store lists routing generation {generations[name]}, "
+                        f"older than generation {previous.generation} served here; serving that"
+                    )
+                    routes[name] = previous
+                    continue
                 if generations[name] == 0:
                     continue
                 try:
