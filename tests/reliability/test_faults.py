@@ -122,3 +122,47 @@ def test_killed_workers_are_replaced_and_no_wrong_answer_is_served(
         "IncompleteRead",
     }, report["connection_errors"]
     verify_answers(report, batches, open_store(str(demo_store)), MODEL)
+
+
+def test_routing_history_going_backwards_keeps_the_last_good_state(
+    demo_store: Path, logs: Path
+) -> None:
+    """A store restored from an older copy lists an older routing generation (or none): the
+    history is append-only, so the replicas keep the newest state they saw and say so."""
+    store_uri = str(demo_store)
+    store = open_store(store_uri)
+    batches = batches_for(demo_store, count=2)
+    with serving(store_uri, logs, workers=2, poll_seconds=0.2) as server:
+        cli_ok("route", MODEL, "--live", "v2=100", "--reason", "all on v2", "--store", store_uri)
+        newest = store.routing_generation(MODEL)
+
+        def generation_everywhere(expected: int) -> bool:
+            return all(
+                readiness(server.url)[1]["models"][MODEL]["generation"] == expected
+                for _ in range(10)
+            )
+
+        assert wait_until(lambda: generation_everywhere(newest), 10)
+        records = sorted((demo_store / "models" / MODEL / "routing").glob("*.json"))
+        saved = {path: path.read_bytes() for path in records}
+        for lost in (records[-1:], records):  # the newest record gone, then all of them
+            for path in lost:
+                path.unlink(missing_ok=True)
+
+            def degraded() -> bool:
+                status, body = readiness(server.url)
+                return status == 503 and any("generation" in r for r in body["reasons"])
+
+            assert wait_until(degraded, 10), readiness(server.url)
+            for _ in range(10):
+                r = requests.post(
+                    f"{server.url}/v1/models/{MODEL}/score",
+                    json={"situations": batches[0]},
+                    timeout=5,
+                )
+                assert r.status_code == 200, r.text
+                assert r.json()["version"] == "v2"
+                assert r.json()["routing"]["generation"] == newest
+        for path, data in saved.items():
+            path.write_bytes(data)
+        assert wait_until(lambda: readiness(server.url)[0] == 200, 10), readiness(server.url)
