@@ -43,7 +43,7 @@ NOTE_ONE_SITUATION = (
     "The one-situation bar is not met. A profile of a worker (cProfile, 600 requests) puts "
     "about a third of the service's extra CPU in the core's input checks and scoring of a "
     "one-row batch (fixed NumPy call overhead) and the rest in the shell: the request "
-    "envelope and decoding, building and encoding the answer, five metric updates and the "
+    "envelope and decoding, building and encoding the answer, four metric updates and the "
     "JSON access-log line."
 )
 
