@@ -14,6 +14,7 @@ import numpy as np
 from flask import Blueprint, Response, g
 
 from service.choice import Change, ScoringError, Variant, check_batch, run_scenarios
+from service.choice.checks import MAX_REPORTED
 
 from .. import auth
 from ..codecs.columns import column_length, decode_columns
@@ -81,7 +82,7 @@ def scenarios(name: str) -> Response:
     if decoded.problems or check.problems:
         raise unprocessable(
             f"{len(decoded.problems) + check.problem_count} value(s) cannot be scored",
-            decoded.refusals(check.problems),
+            decoded.refusals(check.problems)[:MAX_REPORTED],
         )
     variants = [
         Variant(
