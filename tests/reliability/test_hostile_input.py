@@ -111,6 +111,14 @@ def cases(store: Path) -> list[tuple[str, str, str, bytes, dict, set[int], str |
         return text.replace('"@RAW@"', raw).encode()
 
     field = f"$.situations[0].attributes.{alt}.{attr}"
+    scenarios = f"/v1/models/{MODEL}/scenarios"
+
+    def scenario_with_value(raw: str) -> bytes:
+        """A scenario whose one change sets the attribute to the literal ``raw``."""
+        change = {"alternative": alt, "attribute": attr, "op": "set", "value": "@RAW@"}
+        body = {"situations": good, "variants": [{"name": "a", "changes": [change]}]}
+        return json.dumps(body).replace('"@RAW@"', raw).encode()
+
     many_situations = {"situations": [one] * (MAX_SITUATIONS + 1)}
     many_columns = {
         "columns": {
@@ -189,6 +197,12 @@ def cases(store: Path) -> list[tuple[str, str, str, bytes, dict, set[int], str |
         ("too many columnar situations", "POST", score, json_bytes(many_columns), js, {413}, None),
         ("very long id", "POST", score, json_bytes({"situations": [dict(one, id="x" * 100_000)]}), js, {400}, "$.situations[0].id"),
         ("not an object", "POST", score, b"[1, 2, 3]", js, {400}, "$"),
+        # What-if scenarios: the same limits and refusals.
+        ("scenario, 20000 alternatives", "POST", scenarios, json_bytes({"situations": [many_alternatives], "variants": [{"name": "a"}]}), js, {413, 422}, None),
+        ("scenario, NaN change", "POST", scenarios, scenario_with_value("NaN"), js, {422}, "$.variants[0].changes[0].value"),
+        ("scenario, 1e400 change", "POST", scenarios, scenario_with_value("1e400"), js, {422}, "$.variants[0].changes[0].value"),
+        ("scenario, 65 variants", "POST", scenarios, json_bytes({"situations": good, "variants": [{"name": f"v{i}"} for i in range(65)]}), js, {400}, "$.variants"),
+        ("scenario, unknown change field", "POST", scenarios, json_bytes({"situations": good, "variants": [{"name": "a", "changes": [{"alternative": alt, "attribute": attr, "op": "set", "value": 1, "eval": "x"}]}]}), js, {400}, "$.variants[0].changes[0].eval"),
         ("empty body", "POST", score, b"", js, {400}, None),
         # Path traversal and encoded separators in model and version names.
         ("traversal in model", "POST", "/v1/models/..%2F..%2Fetc/score", json_bytes({"situations": good}), js, {400, 404}, None),
