@@ -30,6 +30,8 @@ SECRET_VARIABLES = {"CHOICECAST_SCORE_TOKENS", "CHOICECAST_ADMIN_TOKENS"}
 # path by the image.
 DEPLOYMENT_VARIABLES = {
     "CHOICECAST_TOKENS_FILE",
+    # Internal: `choicecast serve` sets it for gunicorn's exit hook; nobody else should.
+    "CHOICECAST_OWNED_METRICS_DIR",
     "CHOICECAST_HOST",
     "CHOICECAST_PORT",
     "CHOICECAST_WORKERS",
