@@ -16,7 +16,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
-from conftest import REPO, free_port, serve_command, stop, wait_ready
+from http_server import REPO, free_port, serve_command, stop, wait_ready
 
 DOC = REPO / "docs" / "api.md"
 BASE = "http://127.0.0.1:8000"

@@ -5,7 +5,7 @@ from __future__ import annotations
 import json
 
 import pytest
-from models import arrow_bytes, columns, long_table, situation
+from http_models import arrow_bytes, columns, long_table, situation
 
 from service.api import create_app
 from service.api.schemas import ProblemSchema

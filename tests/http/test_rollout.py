@@ -8,7 +8,7 @@ import time
 
 import numpy as np
 import requests
-from models import situation
+from http_models import situation
 from prometheus_client.parser import text_string_to_metric_families
 
 from model_store import open_store

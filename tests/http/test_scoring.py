@@ -8,7 +8,7 @@ import math
 import numpy as np
 import pyarrow as pa
 import pytest
-from models import BASE, arrow_bytes, columns, long_table, situation
+from http_models import BASE, arrow_bytes, columns, long_table, situation
 from scipy.special import logsumexp, softmax
 
 from model_store import open_store
@@ -197,7 +197,7 @@ def test_scenarios_against_the_logit_formulas(client):
 
 @pytest.mark.parametrize("policy", ["reject", "clip"])
 def test_range_policies_over_http(fresh_store, policy):
-    from models import coefficients, spec_dict
+    from http_models import coefficients, spec_dict
     from prometheus_client import REGISTRY
 
     from service.api import create_app

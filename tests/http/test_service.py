@@ -7,7 +7,7 @@ import shutil
 from pathlib import Path
 
 import pytest
-from models import situation
+from http_models import situation
 from openapi_spec_validator import validate
 from scipy import stats
 
@@ -203,7 +203,7 @@ def test_pick_follows_cumulative_normalised_weights():
 
 def test_version_detail_gives_willingness_to_pay(client):
     import numpy as np
-    from models import coefficients
+    from http_models import coefficients
 
     body = VersionDetailSchema().load(client.get("/v1/models/harbour/versions/v1").get_json())
     wtp = {w["coefficient"]: w for w in body["willingness_to_pay"]}

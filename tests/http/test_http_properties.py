@@ -6,9 +6,9 @@ from __future__ import annotations
 import json
 import math
 
+from http_models import ALTERNATIVES, situation
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from models import ALTERNATIVES, situation
 
 SCORE = "/v1/models/harbour/versions/v3/score"
 values = st.one_of(
