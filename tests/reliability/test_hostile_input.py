@@ -18,7 +18,7 @@ import pytest
 
 from model_store import open_store
 from tests.support.payloads import core_probabilities, situations_for
-from tests.support.processes import HOST, serving, worker_pids
+from tests.support.processes import HOST, memory_kib, serving, worker_pids
 
 MODEL = "wrenmouth_commute"
 MAX_BODY = 1_000_000
@@ -54,27 +54,14 @@ def send(port: int, method: str, path: str, body: bytes = b"", headers=None, chu
         conn.close()
 
 
-def peak_kib(pid: int) -> int:
-    """Peak resident set size (VmHWM) of ``pid`` in KiB."""
-    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
-        if line.startswith("VmHWM:"):
-            return int(line.split()[1])
-    raise RuntimeError("no VmHWM")
-
-
-@pytest.fixture(scope="module")
-def hostile_server(tmp_path_factory: pytest.TempPathFactory, demo_template: Path):
-    import shutil
-
-    base = tmp_path_factory.mktemp("hostile")
-    store = base / "store"
-    shutil.copytree(demo_template, store)
+@pytest.fixture()
+def hostile_server(demo_store: Path, logs: Path):
     env = {
         "CHOICECAST_MAX_BODY_BYTES": str(MAX_BODY),
         "CHOICECAST_MAX_SITUATIONS": str(MAX_SITUATIONS),
     }
-    with serving(str(store), base / "logs", env=env, workers=2, poll_seconds=1.0) as server:
-        yield server, store
+    with serving(str(demo_store), logs, env=env, workers=2, poll_seconds=1.0) as server:
+        yield server, demo_store
 
 
 def good_situations(store: Path, n: int = 2) -> list[dict]:
@@ -221,7 +208,7 @@ def cases(store: Path) -> list[tuple[str, str, str, bytes, dict, set[int], str |
 def test_hostile_requests_get_problem_documents_and_memory_stays_bounded(hostile_server) -> None:
     server, store = hostile_server
     workers = worker_pids(server.pid)
-    peaks_before = {pid: peak_kib(pid) for pid in workers}
+    peaks_before = {pid: memory_kib(pid, "VmHWM") for pid in workers}
     failures = []
     for name, method, path, body, headers, allowed, named in cases(store):
         headers = dict(headers)
@@ -248,7 +235,7 @@ def test_hostile_requests_get_problem_documents_and_memory_stays_bounded(hostile
                 break
     # The same workers survived the barrage, within the memory bound.
     assert worker_pids(server.pid) == workers
-    growth = {pid: peak_kib(pid) - peaks_before[pid] for pid in workers}
+    growth = {pid: memory_kib(pid, "VmHWM") - peaks_before[pid] for pid in workers}
     print("peak resident growth per worker (KiB):", growth)
     assert not failures, "\n".join(failures)
     assert max(growth.values()) < MAX_PEAK_GROWTH_KIB, growth

@@ -301,12 +301,13 @@ def worker_pids(master: int) -> list[int]:
     return sorted(pids)
 
 
-def rss_kib(pid: int) -> int:
-    """Resident set size of ``pid`` in KiB (VmRSS in /proc/PID/status)."""
+def memory_kib(pid: int, field: str = "VmRSS") -> int:
+    """A memory figure of ``pid`` in KiB from /proc/PID/status: ``VmRSS`` (resident now) or
+    ``VmHWM`` (the peak resident size so far)."""
     for line in Path(f"/proc/{pid}/status").read_text().splitlines():
-        if line.startswith("VmRSS:"):
+        if line.startswith(f"{field}:"):
             return int(line.split()[1])
-    raise RuntimeError(f"no VmRSS for pid {pid}")
+    raise RuntimeError(f"no {field} for pid {pid}")
 
 
 def wait_for_workers(master: int, count: int, exclude: set[int], timeout: float) -> list[int]:
