@@ -94,6 +94,8 @@ def image_env(lib: Path, gunicorn_conf: Path) -> dict[str, str]:
             "PYTHONDONTWRITEBYTECODE": "1",
             # The image's copy of the config, where server.run finds /etc/choicecast/... there.
             "CHOICECAST_GUNICORN_CONFIG": str(gunicorn_conf),
+            # As in the image: a home directory that does not exist.
+            "HOME": "/nonexistent",
         }
     )
     return env
