@@ -83,6 +83,9 @@ def install(app: Flask, log_requests: bool) -> None:
         route = rule.rule if rule is not None else "unmatched"
         model = ctx.get("model", "")
         status = response.status_code
+        if ctx.get("version") and "X-Model-Version" not in response.headers:
+            # A refusal after routing still says which version judged the input.
+            response.headers["X-Model-Version"] = ctx["version"]
         metrics.REQUESTS.labels(model, ctx.get("version", ""), route, str(status)).inc()
         metrics.LATENCY.labels(route).observe(elapsed)
         if status in (400, 413, 415, 422):

@@ -148,7 +148,9 @@ def test_non_finite_values_are_422(client, text, expected):
 def test_values_that_cannot_be_scored_are_422(client, mutate, expected):
     s = situation(0)
     mutate(s)
-    body = problem(client.post(SCORE, json={"situations": [situation(1), s]}), 422)
+    r = client.post(SCORE, json={"situations": [situation(1), s]})
+    assert r.headers["X-Model-Version"] == "v1"  # the version that judged the input
+    body = problem(r, 422)
     assert paths(body) == [expected.replace("[0]", "[1]")]
 
 
