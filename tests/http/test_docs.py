@@ -1,7 +1,8 @@
-"""The examples of docs/api.md, run as written against the demo store under `choicecast serve`.
+"""The examples of docs/api.md and of the README, run as written against the demo store under
+`choicecast serve`.
 
-Shell examples (curl) must exit 0 and print JSON objects without an error status; Python
-examples must print exactly what the document says they print.
+Shell examples (curl) must exit 0 and print JSON objects without an error status (but the one
+error example of docs/api.md); Python examples must print exactly what the document says.
 """
 
 from __future__ import annotations
@@ -19,13 +20,14 @@ import pytest
 from http_server import REPO, free_port, serve_command, stop, wait_ready
 
 DOC = REPO / "docs" / "api.md"
+README = REPO / "README.md"
 BASE = "http://127.0.0.1:8000"
 BLOCK = re.compile(r"```(sh|python)\n(.*?)```(?:\n\nprints\n\n((?:    [^\n]*\n|\n)+))?", re.S)
 
 
-def blocks(kind: str) -> list[tuple[str, str | None]]:
+def blocks(kind: str, doc: Path = DOC) -> list[tuple[str, str | None]]:
     out = []
-    for lang, code, prints in BLOCK.findall(DOC.read_text()):
+    for lang, code, prints in BLOCK.findall(doc.read_text()):
         if lang == kind:
             expected = None
             if prints:
@@ -121,3 +123,17 @@ def test_python_examples_print_what_the_document_says(open_demo):
         out = run([sys.executable, "-c", code.replace(BASE, open_demo)], dict(os.environ))
         assert expected is not None
         assert out == expected
+
+
+def test_readme_examples(open_demo):
+    env = dict(os.environ)
+    shell, python = blocks("sh", README), blocks("python", README)
+    assert shell and python
+    for code, _ in shell:
+        docs = json_documents(
+            run(["bash", "-euo", "pipefail", "-c", code.replace(BASE, open_demo)], env)
+        )
+        assert docs and all("status" not in d and "version" in d for d in docs), docs
+    for code, expected in python:
+        out = run([sys.executable, "-c", code.replace(BASE, open_demo)], env)
+        assert expected is None or out == expected
