@@ -194,10 +194,16 @@ def _store(args: argparse.Namespace) -> Store:
 
 
 def cmd_validate(args: argparse.Namespace) -> int:
-    spec, coefficients, estimation = read_model_inputs(
-        args.spec, args.coefficients, args.covariance
-    )
-    validate_model(spec, coefficients)
+    try:
+        spec, coefficients, estimation = read_model_inputs(
+            args.spec, args.coefficients, args.covariance
+        )
+        validate_model(spec, coefficients)
+    except SpecError as exc:
+        if not args.json:
+            raise
+        emit_json({"valid": False, "problems": [p.as_dict() for p in exc.problems]})
+        return BAD_INPUT
     if args.json:
         emit_json({"valid": True, "model": spec.name, "family": spec.family})
     else:

@@ -155,3 +155,16 @@ def test_bad_population_rows_are_named(cli, ferry_files, tmp_path):
         "population[situation 2].attributes.fast_boat.minutes: must be > 0 under log" in result.err
     )
     assert "Traceback" not in result.err
+
+
+def test_validate_json_lists_problems_for_pipelines(capsys, tmp_path):
+    spec = tmp_path / "spec.json"
+    spec.write_text(json.dumps(FERRY_SPEC))
+    coefs = tmp_path / "c.json"
+    coefs.write_text('{"asc_fast": 1, "b_fare": "cheap"}')
+    code = main(["validate", str(spec), "--coefficients", str(coefs), "--json"])
+    report = json.loads(capsys.readouterr().out)
+    assert code == 2 and report["valid"] is False
+    assert {"path": "coefficients.b_fare.estimate", "message": "must be a number, not 'cheap'"} in (
+        report["problems"]
+    )
