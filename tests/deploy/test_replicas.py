@@ -38,6 +38,7 @@ import pytest
 import requests
 from containerfile_reader import CONTAINERFILE, exec_form, healthcheck_command, instructions
 from k8s_manifests import one
+from prometheus_client.parser import text_string_to_metric_families
 
 from model_store.demo import VERSIONS as DEMO_VERSIONS
 from model_store.routing import record_key
@@ -124,6 +125,8 @@ class Record:
     early_states: dict[str, dict[str, Any]]
     store_generations: dict[str, int]
     healthcheck: tuple[int, int]
+    metric_generations: dict[str, float]
+    """Per replica, the `choicecast_routing_generation` gauge of the model at the end."""
 
 
 def image_command(port: int) -> list[str]:
@@ -354,7 +357,20 @@ def record(cluster: Cluster) -> Record:
         early_states=early_states,
         store_generations=_generations(listing),
         healthcheck=_run_healthcheck(early["replica-a"]),
+        metric_generations={
+            name: _metric_generation(replica) for name, replica in cluster.replicas.items()
+        },
     )
+
+
+def _metric_generation(replica: Running) -> float:
+    """The replica's `choicecast_routing_generation{model=MODEL}` from /metrics."""
+    text = requests.get(f"{replica.url}/metrics", timeout=5).text
+    for family in text_string_to_metric_families(text):
+        for sample in family.samples:
+            if sample.name == "choicecast_routing_generation" and sample.labels == {"model": MODEL}:
+                return sample.value
+    raise AssertionError(f"{replica.name}: no choicecast_routing_generation for {MODEL}")
 
 
 def _bodies() -> list[dict[str, Any]]:
@@ -416,6 +432,13 @@ def test_a_late_replica_serves_the_same_state(record: Record) -> None:
     assert record.late_state[MODEL]["live"] == {v: w for v, w in last["live"].items() if w > 0}
     assert record.late_state[MODEL]["shadow"] == last["shadow"]
     assert any(s.replica == "replica-late" for s in record.samples)
+
+
+def test_every_replica_reports_the_generation_it_serves_in_metrics(record: Record) -> None:
+    # What docs/production.md tells operators to watch: one generation across all pods.
+    last = record.changes[-1].generation
+    assert record.metric_generations == dict.fromkeys(record.metric_generations, float(last))
+    assert len(record.metric_generations) == 3
 
 
 def test_no_request_fails_while_routing_changes(record: Record) -> None:
