@@ -17,6 +17,8 @@ import uuid
 
 from flask import Flask, Response, g, request
 
+from service.choice.spec import NAME_PATTERN
+
 from . import metrics
 
 REQUEST_ID = re.compile(r"^[A-Za-z0-9._:-]{1,128}$")
@@ -83,9 +85,16 @@ def install(app: Flask, log_requests: bool) -> None:
         route = rule.rule if rule is not None else "unmatched"
         model = ctx.get("model", "")
         status = response.status_code
-        if ctx.get("version") and "X-Model-Version" not in response.headers:
-            # A refusal after routing still says which version judged the input.
-            response.headers["X-Model-Version"] = ctx["version"]
+        version = ctx.get("version")
+        if (
+            version
+            and "X-Model-Version" not in response.headers
+            and NAME_PATTERN.fullmatch(version)
+        ):
+            # A refusal after routing still says which version judged the input (never a
+            # name from the path that is not a valid version name: it could hold characters
+            # a header cannot carry).
+            response.headers["X-Model-Version"] = version
         metrics.REQUESTS.labels(model, ctx.get("version", ""), route, str(status)).inc()
         metrics.LATENCY.labels(route).observe(elapsed)
         if status in (400, 413, 415, 422):
