@@ -16,7 +16,7 @@ import requests
 
 from model_store import open_store
 from tests.support import artifacts
-from tests.support.payloads import score_plan, situations_for, verify_answers
+from tests.support.payloads import batches_for, score_plan, verify_answers
 from tests.support.processes import (
     cli_ok,
     readiness,
@@ -31,9 +31,9 @@ from tests.support.processes import (
 MODEL = "wrenmouth_commute"
 
 
-def batches_for(store_root: Path, count: int = 8) -> list[list[dict]]:
+def demo_batches(store_root: Path, count: int = 8) -> list[list[dict]]:
     spec = open_store(str(store_root)).load_version(MODEL, "v1").spec
-    return [situations_for(spec, 1 + i % 2, seed=300 + i) for i in range(count)]
+    return batches_for(spec, count, seed=300, max_size=2)
 
 
 def test_corrupt_and_partial_versions_are_never_routed(demo_store: Path, logs: Path, load) -> None:
@@ -53,7 +53,7 @@ def test_corrupt_and_partial_versions_are_never_routed(demo_store: Path, logs: P
         assert culprit in done.stderr + done.stdout
     assert store.routing_generation(MODEL) == generation  # nothing recorded
 
-    batches = batches_for(demo_store)
+    batches = demo_batches(demo_store)
     with serving(store_uri, logs, workers=2, poll_seconds=0.2) as server:
         loadgen, path = load(server.port, score_plan(MODEL, batches), duration=120)
         time.sleep(1.5)
@@ -95,7 +95,7 @@ def test_corrupt_and_partial_versions_are_never_routed(demo_store: Path, logs: P
 def test_killed_workers_are_replaced_and_no_wrong_answer_is_served(
     demo_store: Path, logs: Path, load
 ) -> None:
-    batches = batches_for(demo_store)
+    batches = demo_batches(demo_store)
     with serving(str(demo_store), logs, workers=2, poll_seconds=1.0) as server:
         original = worker_pids(server.pid)
         loadgen, path = load(server.port, score_plan(MODEL, batches), duration=120)
@@ -131,7 +131,7 @@ def test_routing_history_going_backwards_keeps_the_last_good_state(
     history is append-only, so the replicas keep the newest state they saw and say so."""
     store_uri = str(demo_store)
     store = open_store(store_uri)
-    batches = batches_for(demo_store, count=2)
+    batches = demo_batches(demo_store, count=2)
     with serving(store_uri, logs, workers=2, poll_seconds=0.2) as server:
         cli_ok("route", MODEL, "--live", "v2=100", "--reason", "all on v2", "--store", store_uri)
         newest = store.routing_generation(MODEL)

@@ -13,7 +13,7 @@ import time
 from pathlib import Path
 
 from model_store import open_store
-from tests.support.payloads import score_plan, situations_for, verify_answers
+from tests.support.payloads import batches_for, score_plan, verify_answers
 from tests.support.processes import (
     cli_ok,
     load_report,
@@ -26,9 +26,9 @@ MODEL = "wrenmouth_commute"  # the demo's model with two versions (v1 90%, v2 10
 CONCURRENCY = 8
 
 
-def batches_for(store_root: Path, count: int = 12) -> list[list[dict]]:
+def demo_batches(store_root: Path, count: int = 12) -> list[list[dict]]:
     spec = open_store(str(store_root)).load_version(MODEL, "v1").spec
-    return [situations_for(spec, 1 + i % 3, seed=100 + i) for i in range(count)]
+    return batches_for(spec, count, seed=100)
 
 
 def summary(report: dict) -> str:
@@ -44,7 +44,7 @@ def assert_no_failures(report: dict) -> None:
 
 
 def test_sustained_load_has_zero_errors(demo_store: Path, logs: Path, load) -> None:
-    batches = batches_for(demo_store)
+    batches = demo_batches(demo_store)
     with serving(str(demo_store), logs, workers=2, poll_seconds=1.0) as server:
         loadgen, path = load(
             server.port, score_plan(MODEL, batches), duration=12, concurrency=CONCURRENCY
@@ -61,7 +61,7 @@ def test_sustained_load_has_zero_errors(demo_store: Path, logs: Path, load) -> N
 
 def test_rollout_under_load_fails_no_request(demo_store: Path, logs: Path, load) -> None:
     store_uri = str(demo_store)
-    batches = batches_for(demo_store)
+    batches = demo_batches(demo_store)
     steps = [
         ("route", MODEL, "--live", "v1=50", "v2=50", "--reason", "canary to half"),
         ("promote", MODEL, "v2", "--reason", "v2 holds up"),

@@ -12,7 +12,7 @@ import time
 from pathlib import Path
 
 from model_store import open_store
-from tests.support.payloads import score_plan, situations_for, verify_answers
+from tests.support.payloads import batches_for, score_plan, verify_answers
 from tests.support.processes import (
     S3_TEST_ENV,
     clean_env,
@@ -40,7 +40,7 @@ def test_object_store_outage_and_recovery(tmp_path: Path, logs: Path, load, monk
         cli_ok("demo", "--store", URI, env=clean_env(env), cwd=tmp_path)
         store = open_store(URI, endpoint_url=s3.url)
         spec = store.load_version(MODEL, "v1").spec
-        batches = [situations_for(spec, 1 + i % 2, seed=500 + i) for i in range(8)]
+        batches = batches_for(spec, 8, seed=500, max_size=2)
         generation = store.routing_generation(MODEL)
         service_env = {
             **env,

@@ -204,13 +204,12 @@ def run_load(
 def _model_plan(store_uri: str, model: str, token: str | None) -> list[dict[str, Any]]:
     """12 requests of 1-3 valid situations each for the live version with the largest weight."""
     from model_store import open_store
-    from tests.support.payloads import score_plan, situations_for
+    from tests.support.payloads import batches_for, score_plan
 
     store = open_store(store_uri)
     live = store.get_routing(model).live
     spec = store.load_version(model, max(live, key=lambda v: live[v])).spec
-    batches = [situations_for(spec, 1 + i % 3, seed=100 + i) for i in range(12)]
-    return score_plan(model, batches, token)
+    return score_plan(model, batches_for(spec, 12, seed=100), token)
 
 
 def main(argv: Sequence[str] | None = None) -> int:

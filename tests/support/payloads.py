@@ -71,6 +71,13 @@ def situations_for(spec: ModelSpec, n: int, seed: int = 0) -> list[dict[str, Any
     return out
 
 
+def batches_for(
+    spec: ModelSpec, count: int, seed: int, max_size: int = 3
+) -> list[list[dict[str, Any]]]:
+    """``count`` request bodies' worth of situations, of 1 to ``max_size`` situations each."""
+    return [situations_for(spec, 1 + i % max_size, seed=seed + i) for i in range(count)]
+
+
 def core_probabilities(
     spec: ModelSpec, coefficients: Coefficients, situations: Sequence[Mapping[str, Any]]
 ) -> list[dict[str, float]]:
