@@ -83,19 +83,22 @@ def install(app: Flask, log_requests: bool) -> None:
         response.headers["X-Request-ID"] = request_id
         rule = req.url_rule
         route = rule.rule if rule is not None else "unmatched"
-        model = ctx.get("model", "")
         status = response.status_code
-        version = ctx.get("version")
+        # Metric labels and the version header only ever name a known model and a version
+        # that was found: names from the path are the caller's, and each new label value is
+        # a new time series (unbounded cardinality) or a header a response cannot carry.
+        model = ctx.get("model", "")
+        if model and model not in app.extensions["choicecast.registry"].known_models():
+            model = ""
+        version = ctx.get("version", "") if model and status != 404 else ""
         if (
             version
             and "X-Model-Version" not in response.headers
             and NAME_PATTERN.fullmatch(version)
         ):
-            # A refusal after routing still says which version judged the input (never a
-            # name from the path that is not a valid version name: it could hold characters
-            # a header cannot carry).
+            # A refusal after routing still says which version judged the input.
             response.headers["X-Model-Version"] = version
-        metrics.REQUESTS.labels(model, ctx.get("version", ""), route, str(status)).inc()
+        metrics.REQUESTS.labels(model, version, route, str(status)).inc()
         metrics.LATENCY.labels(route).observe(elapsed)
         if status in (400, 413, 415, 422):
             metrics.VALIDATION_FAILURES.labels(model, str(status)).inc()
