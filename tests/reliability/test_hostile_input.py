@@ -29,6 +29,7 @@ PROBLEM = "application/problem+json"
 # Peak resident memory a worker may gain over the whole barrage (the largest legitimate body
 # is 1 MB; a copy or two of it in decoded form is expected, hundreds of MB are not).
 MAX_PEAK_GROWTH_KIB = 150 * 1024
+UNKNOWN = "no-such-name-"
 
 
 def send(port: int, method: str, path: str, body: bytes = b"", headers=None, chunked=False):
@@ -201,6 +202,9 @@ def cases(store: Path) -> list[tuple[str, str, str, bytes, dict, set[int], str |
         ("NUL in name", "GET", "/v1/models/wren%00mouth", b"", {}, {400, 404}, None),
         ("backslash traversal", "GET", f"/v1/models/{MODEL}/versions/..%5C..%5Cv1", b"", {}, {400, 404}, None),
         ("dotfile version", "GET", f"/v1/models/{MODEL}/versions/.tmp-x", b"", {}, {400, 404}, None),
+        # Unknown names: refused, and (checked below) never a metric label.
+        *[("unknown version", "GET", f"/v1/models/{MODEL}/versions/{UNKNOWN}v{i}", b"", {}, {404}, None) for i in range(20)],
+        *[("unknown model", "POST", f"/v1/models/{UNKNOWN}m{i}/score", json_bytes({"situations": good}), js, {404}, None) for i in range(20)],
     ]
     # fmt: on
 
@@ -239,6 +243,10 @@ def test_hostile_requests_get_problem_documents_and_memory_stays_bounded(hostile
     print("peak resident growth per worker (KiB):", growth)
     assert not failures, "\n".join(failures)
     assert max(growth.values()) < MAX_PEAK_GROWTH_KIB, growth
+
+    # Names from the path never become metric labels (each would be a new time series).
+    status, _, payload = send(server.port, "GET", "/metrics")
+    assert status == 200 and UNKNOWN.encode() not in payload
 
     # And a valid request still gets the core's answer.
     good = good_situations(store)
