@@ -7,6 +7,11 @@ eq. 4.2 (from memory) in the scale lambda_m of nest m (i in nest k, Vbar_m = sum
                           - P(m) (I_m - Vbar_m / l_m).
 Willingness to pay: w_k = -beta_k / beta_cost, grad = (-1/beta_cost, beta_k/beta_cost^2).
 
+An alternative with P_j = 0 (exp underflow, or V_j = -inf from an overflowing feature) moves
+no probability: dP_i/dV_j = P_i D_ij = 0 for every i (Train 2009 sec. 3.6, from memory:
+dP_i/dV_j = -P_i P_j, dP_j/dV_j = P_j (1 - P_j)).  Its features and its row are therefore
+left out (exact zeros) instead of being formed as inf * 0.
+
 Train (2009) section and equation numbers are cited from memory.
 """
 
@@ -40,7 +45,9 @@ def scale_log_derivatives(model: CompiledModel, state: ChoiceState) -> np.ndarra
         return out
     assert state.conditional is not None and state.inclusive is not None
     assert state.nest_probabilities is not None and state.utilities is not None
-    v = np.where(state.available, state.utilities, 0.0)
+    # P(j|m) V_j -> 0 as V_j -> -inf: alternatives with P(j|m) = 0 take no part (their own
+    # term is zeroed by P_j = 0 in probability_gradient).
+    v = np.where(state.conditional > 0, state.utilities, 0.0)
     for m, k in enumerate(model.nest_scale_index):
         lam = model.nest_scales[m]
         members = model.nest_of == m
@@ -58,10 +65,15 @@ def scale_log_derivatives(model: CompiledModel, state: ChoiceState) -> np.ndarra
 def probability_gradient(
     model: CompiledModel, batch: Batch, state: ChoiceState, d: np.ndarray
 ) -> np.ndarray:
-    """dP_i / dbeta_k (K, J, N)."""
-    design = np.where(state.available[None], utility_design(model, batch), 0.0)
+    """dP_i / dbeta_k (K, J, N) = P_i dln P_i/dbeta_k; exactly 0 where P_i = 0."""
+    live = state.probabilities > 0
+    # Features of an alternative with P_j = 0 may overflow (x * z = inf); they are masked.
+    with np.errstate(over="ignore", invalid="ignore"):
+        design = utility_design(model, batch)
+    design = np.where(live[None], design, 0.0)
     dlogp = np.einsum("ijn,kjn->kin", d, design) + scale_log_derivatives(model, state)
-    return dlogp * state.probabilities[None]
+    p = np.broadcast_to(state.probabilities[None], dlogp.shape)
+    return np.multiply(dlogp, p, out=np.zeros_like(dlogp), where=live[None])
 
 
 def probability_std_errors(

@@ -9,6 +9,7 @@ import numpy as np
 import pytest
 
 from service.choice import (
+    Batch,
     Coefficients,
     ScoreOptions,
     ScoringError,
@@ -70,6 +71,41 @@ def test_probability_std_errors_are_the_delta_method_of_a_numerical_jacobian(fam
     expected = np.sqrt(np.einsum("njk,kl,njl->nj", jac, cov, jac))
     np.testing.assert_allclose(r.prob_std_errors, expected, rtol=1e-5, atol=1e-10)
     assert np.all(r.prob_std_errors[~batch.available] == 0)
+
+
+@pytest.mark.parametrize("family", ["multinomial", "nested"])
+def test_std_errors_of_an_alternative_whose_feature_overflows_are_exact_zeros(family, mnl):
+    """Rail's fare x income interaction overflows to -inf (fare 1e10, only outside the range,
+    a warning; income -1e300), so V_rail = -inf; the car's income term gives V_car ~ -1e298.
+    Both have P = 0.  Their features must not be formed as inf * 0 (NaN and a RuntimeWarning,
+    which this suite turns into an error)."""
+    model = with_covariance(mnl if family == "multinomial" else nested_commute(), seed=6)
+    batch = commute_batch(model, 6, seed=7)
+    rail, car = model.alternatives.index("rail"), model.alternatives.index("car")
+    x, z = batch.attributes.copy(), batch.context.copy()
+    x[:3, rail, model.attributes.index("fare")] = 1e10
+    z[:3, 0] = -1e300
+    extreme = Batch(attributes=x, context=z, available=batch.available, weights=batch.weights)
+    r = score(model, extreme, ScoreOptions(std_errors=True))
+    assert np.all(r.probabilities[:3, [rail, car]] == 0)
+    assert np.all(r.prob_std_errors[:3, [rail, car]] == 0)
+    assert np.isfinite(r.prob_std_errors).all()
+    # Source: Train 2009 eq. 3.6 (from memory): exp(-inf) = 0, so an alternative of utility
+    # -inf is one that cannot be chosen: the others' errors are those of the same
+    # situations with rail and car unavailable (the rows with finite inputs are untouched).
+    avail = batch.available.copy()
+    avail[:3, [rail, car]] = False
+    without = Batch(
+        attributes=batch.attributes, context=batch.context, available=avail, weights=batch.weights
+    )
+    expected = score(model, without, ScoreOptions(std_errors=True)).prob_std_errors
+    np.testing.assert_array_equal(r.prob_std_errors[3:], expected[3:])
+    np.testing.assert_allclose(r.prob_std_errors[:3], expected[:3], rtol=1e-12, atol=1e-15)
+    # Source: delta method of a numerical Jacobian (common practice), as above.
+    jac = numerical_jacobian(model, extreme)
+    cov = model.coefficients.covariance
+    delta = np.sqrt(np.einsum("njk,kl,njl->nj", jac, cov, jac))
+    np.testing.assert_allclose(r.prob_std_errors, delta, rtol=1e-5, atol=1e-10)
 
 
 def test_probability_std_errors_match_a_simulation_of_the_estimates(mnl):
