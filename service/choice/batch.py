@@ -53,13 +53,12 @@ class Batch:
         wrong type are reported in ``problems``, their cells left NaN.
         """
         n, n_j = len(situations), len(model.alternatives)
-        x = np.where(model.required, np.nan, 0.0)[None].repeat(n, axis=0)
-        z = np.where(model.required_context_mask, np.nan, 0.0)[None].repeat(n, axis=0)
+        x_unset, z_unset = model.unset_values
+        x = x_unset[None].repeat(n, axis=0)
+        z = z_unset[None].repeat(n, axis=0)
         available = np.ones((n, n_j), dtype=bool)
         weights = np.ones(n)
-        j_of = {a: i for i, a in enumerate(model.alternatives)}
-        a_of = {a: i for i, a in enumerate(model.attributes)}
-        c_of = {c: i for i, c in enumerate(model.context)}
+        j_of, a_of, c_of = model.positions
         problems: list[BatchProblem] = []
 
         def bad(i: int, message: str, *path: str) -> None:

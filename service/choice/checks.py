@@ -124,7 +124,6 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
         problems.add_whole(("weight",), "weights must have a positive sum")
 
     policy = model.spec.range_policy
-    verb = "clipped to" if policy == "clip" else "outside"
     sink = problems if policy == "reject" else warnings
     clips: list[tuple[ValueChecks, np.ndarray, bool]] = []
     for all_checks, arr, cells in (
@@ -135,15 +134,10 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
         # finite only if every term is (an overflowing sum just takes the long way).
         with np.errstate(over="ignore", invalid="ignore"):
             all_finite = bool(np.isfinite(arr.sum()))
-        which = np.arange(len(all_checks)) if not all_finite else np.flatnonzero(all_checks.bounded)
-        if not len(which):
+        checks = all_checks.bounded_checks if all_finite else all_checks
+        if not len(checks):
             continue
-        checks = all_checks.select(which)
         clip = np.zeros(len(checks), dtype=bool)
-        range_messages = tuple(
-            f"{{v:g}} is {verb} the estimation range [{lo:g}, {hi:g}]"
-            for lo, hi in zip(checks.low, checks.high, strict=True)
-        )
         step = max(1, CHUNK_VALUES // len(checks))
         for start in range(0, n, step):
             stop = min(n, start + step)
@@ -158,11 +152,12 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
             finite = np.isfinite(values)
             message = "must be given as a finite number (got {v})"
             problems.add(live & ~finite, checks.fields, message, values, start)
+            judged = live & finite
             with np.errstate(invalid="ignore"):
-                outside_domain = live & finite & (values <= checks.domain)
-                outside_range = live & finite & ((values < checks.low) | (values > checks.high))
+                outside_domain = judged & (values <= checks.domain)
+                outside_range = judged & ((values < checks.low) | (values > checks.high))
             problems.add(outside_domain, checks.fields, checks.domain_messages, values, start)
-            sink.add(outside_range, checks.fields, range_messages, values, start)
+            sink.add(outside_range, checks.fields, checks.range_messages, values, start)
             clip |= outside_range.any(axis=0)
         clips.append((checks, clip, cells))
 

@@ -14,6 +14,7 @@ Train (2009) section and equation numbers are cited from memory.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 
@@ -66,6 +67,8 @@ class ValueChecks:
     low: np.ndarray
     """(R,) estimation range, -inf / inf where open."""
     high: np.ndarray
+    range_messages: tuple[str, ...]
+    """Warning (or refusal) of a value outside its estimation range, ``{v}`` to fill."""
 
     def __len__(self) -> int:
         return len(self.index)
@@ -74,6 +77,11 @@ class ValueChecks:
     def bounded(self) -> np.ndarray:
         """(R,) bool: values with a domain or range bound (more than a finiteness check)."""
         return np.isfinite(self.domain) | np.isfinite(self.low) | np.isfinite(self.high)
+
+    @cached_property
+    def bounded_checks(self) -> ValueChecks:
+        """The checks of the bounded values only (built once per compiled model)."""
+        return self.select(np.flatnonzero(self.bounded))
 
     def select(self, which: np.ndarray) -> ValueChecks:
         """The checks of the values ``which`` (integer positions)."""
@@ -85,6 +93,7 @@ class ValueChecks:
             domain_messages=tuple(self.domain_messages[i] for i in which),
             low=self.low[which],
             high=self.high[which],
+            range_messages=tuple(self.range_messages[i] for i in which),
         )
 
 
@@ -94,19 +103,27 @@ def _value_checks(
     index: list[int],
     domain: list[float],
     bounds: list[tuple[float | None, float | None]],
+    range_policy: str,
 ) -> ValueChecks:
     messages = {
         0.0: "must be > 0 under log (got {v:g})",
         -1.0: "must be > -1 under log1p (got {v:g})",
     }
+    low = np.array([-np.inf if lo is None else lo for lo, _ in bounds], dtype=np.float64)
+    high = np.array([np.inf if hi is None else hi for _, hi in bounds], dtype=np.float64)
+    verb = "clipped to" if range_policy == "clip" else "outside"
     return ValueChecks(
         fields=tuple(fields),
         alternative=np.array(alternative, dtype=np.intp),
         index=np.array(index, dtype=np.intp),
         domain=np.array(domain, dtype=np.float64),
         domain_messages=tuple(messages.get(d, "") for d in domain),
-        low=np.array([-np.inf if lo is None else lo for lo, _ in bounds], dtype=np.float64),
-        high=np.array([np.inf if hi is None else hi for _, hi in bounds], dtype=np.float64),
+        low=low,
+        high=high,
+        range_messages=tuple(
+            f"{{v:g}} is {verb} the estimation range [{lo:g}, {hi:g}]"
+            for lo, hi in zip(low, high, strict=True)
+        ),
     )
 
 
@@ -153,6 +170,24 @@ class CompiledModel:
     @property
     def nested(self) -> bool:
         return len(self.nest_ids) > 0
+
+    @cached_property
+    def positions(self) -> tuple[dict[str, int], dict[str, int], dict[str, int]]:
+        """Axis position of each alternative, attribute and context name (built once)."""
+        return tuple(
+            {name: i for i, name in enumerate(names)}
+            for names in (self.alternatives, self.attributes, self.context)
+        )  # type: ignore[return-value]
+
+    @cached_property
+    def unset_values(self) -> tuple[np.ndarray, np.ndarray]:
+        """(J, A) and (C,) read-only fill of a situation before its values are set: NaN
+        where the model uses the value (missing until given), 0 elsewhere."""
+        x = np.where(self.required, np.nan, 0.0)
+        z = np.where(self.required_context_mask, np.nan, 0.0)
+        x.setflags(write=False)
+        z.setflags(write=False)
+        return x, z
 
     @property
     def required_attributes(self) -> tuple[tuple[str, str], ...]:
@@ -238,6 +273,7 @@ def compile_model(spec: ModelSpec, coefficients: Coefficients) -> CompiledModel:
             for j, a in zip(js, as_, strict=True)
         ],
         [(spec.attributes[a].low, spec.attributes[a].high) for a in as_],
+        spec.range_policy,
     )
     cs = np.flatnonzero(required_context_mask)
     context_checks = _value_checks(
@@ -246,6 +282,7 @@ def compile_model(spec: ModelSpec, coefficients: Coefficients) -> CompiledModel:
         list(cs),
         [-np.inf] * len(cs),
         [(spec.context[c].low, spec.context[c].high) for c in cs],
+        spec.range_policy,
     )
 
     nest_kwargs = {}
