@@ -29,7 +29,7 @@ FAMILIES = ("binary", "multinomial", "nested")
 TRANSFORMS = ("identity", "log", "log1p")
 RANGE_POLICIES = ("warn", "reject", "clip")
 ROLES = ("cost",)
-NAME_PATTERN = re.compile(r"^[A-Za-z_][A-Za-z0-9_.-]{0,63}$")
+NAME_PATTERN = re.compile(r"^[A-Za-z_][A-Za-z0-9_.-]{0,63}\Z")
 """Identifiers of alternatives, attributes, context variables, coefficients and nests."""
 
 
