@@ -17,7 +17,7 @@ from pathlib import Path
 
 import pytest
 
-from model_store import ArtifactError, open_store
+from model_store import ArtifactError, StoreError, open_store
 from tests.support import artifacts
 from tests.support.processes import REPO, clean_env
 
@@ -146,3 +146,21 @@ def test_checksums_bind_every_listed_file(tmp_path: Path) -> None:
     store.backend.put(key, bytes(data))
     with pytest.raises(ArtifactError, match="checksum"):
         store.load_version("weekend", "v1")
+
+
+@pytest.mark.parametrize("name", ["v1\n", "v1\r", "../v1", "v1/..", ".hidden", "v 1", ""])
+def test_version_names_that_could_escape_or_mislead_are_refused(tmp_path: Path, name: str) -> None:
+    """Names are the whole of ``[A-Za-z_][A-Za-z0-9_.-]{0,63}``; in Python's ``re`` a ``$``
+    also matches before a trailing newline (Python docs, ``re``), so ``v1\\n`` must still be
+    refused.  Nothing is written for a refused name."""
+    store = open_store(str(tmp_path / "store"))
+    store.backend.ensure()
+    with pytest.raises(StoreError):
+        store.publish(
+            artifacts.MODEL,
+            name,
+            artifacts.spec(),
+            artifacts.coefficients(),
+            published_by="reliability-tests",
+        )
+    assert list((tmp_path / "store").rglob("*")) == []
