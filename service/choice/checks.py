@@ -118,10 +118,14 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
     avail, w = batch.available, batch.weights
     problems.add(~avail.any(axis=1), ("available",), "no alternative is available")
     w_finite = np.isfinite(w)
-    problems.add(~w_finite, ("weight",), "must be finite (got {v})", w)
-    problems.add(w_finite & (w < 0), ("weight",), "must be >= 0 (got {v:g})", w)
-    if w_finite.all() and (w >= 0).all() and not w.sum() > 0:
-        problems.add_whole(("weight",), "weights must have a positive sum")
+    if w_finite.all():
+        negative = w < 0
+        problems.add(negative, ("weight",), "must be >= 0 (got {v:g})", w)
+        if not negative.any() and not w.sum() > 0:
+            problems.add_whole(("weight",), "weights must have a positive sum")
+    else:
+        problems.add(~w_finite, ("weight",), "must be finite (got {v})", w)
+        problems.add(w_finite & (w < 0), ("weight",), "must be >= 0 (got {v:g})", w)
 
     policy = model.spec.range_policy
     sink = problems if policy == "reject" else warnings
@@ -149,10 +153,13 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
             else:
                 values = arr[start:stop][:, checks.index]
                 live = np.ones_like(values, dtype=bool)
-            finite = np.isfinite(values)
-            message = "must be given as a finite number (got {v})"
-            problems.add(live & ~finite, checks.fields, message, values, start)
-            judged = live & finite
+            if all_finite:
+                judged = live
+            else:
+                finite = np.isfinite(values)
+                message = "must be given as a finite number (got {v})"
+                problems.add(live & ~finite, checks.fields, message, values, start)
+                judged = live & finite
             with np.errstate(invalid="ignore"):
                 outside_domain = judged & (values <= checks.domain)
                 outside_range = judged & ((values < checks.low) | (values > checks.high))

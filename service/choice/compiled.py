@@ -41,6 +41,13 @@ class TermArrays:
     def __len__(self) -> int:
         return len(self.alternative)
 
+    @cached_property
+    def rows(self) -> tuple[tuple[int, int, int, int, int], ...]:
+        """Each term as plain ints (alternative, attribute, context, transform,
+        coefficient), for loops over terms (built once)."""
+        columns = (self.alternative, self.attribute, self.context, self.transform)
+        return tuple(zip(*(c.tolist() for c in (*columns, self.coefficient)), strict=True))
+
     def select(self, mask: np.ndarray) -> TermArrays:
         return TermArrays(
             alternative=self.alternative[mask],

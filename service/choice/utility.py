@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from service.choice.batch import Batch
-from service.choice.compiled import IDENTITY, LOG, NONE, CompiledModel, TermArrays
+from service.choice.compiled import IDENTITY, LOG, NONE, CompiledModel
 
 CHUNK_BYTES = 2**21
 """Rows of the attribute array are multiplied in blocks of about this size, so that each
@@ -49,20 +49,23 @@ def utilities(model: CompiledModel, batch: Batch) -> np.ndarray:
         stop = min(n, start + step)
         np.matmul(x[start:stop].transpose(1, 0, 2), weights, out=v[:, start:stop, None])
     v += model.constants[:, None]
-    g = model.general_terms
+    beta = model.beta
     # Overflow gives an infinite or NaN utility, which choice_probabilities refuses by name.
     with np.errstate(over="ignore", invalid="ignore"):
-        for t in range(len(g)):
-            v[g.alternative[t]] += model.beta[g.coefficient[t]] * _feature(g, t, x, z)
+        for term in model.general_terms.rows:
+            v[term[0]] += beta[term[4]] * _feature(term, x, z)
     return v
 
 
-def _feature(terms: TermArrays, t: int, x: np.ndarray, z: np.ndarray) -> np.ndarray | float:
-    """t(x_j[a]) * z[c] of term ``t`` over the batch (N,), or 1.0 for a bare constant."""
-    a, c = terms.attribute[t], terms.context[t]
+def _feature(
+    term: tuple[int, int, int, int, int], x: np.ndarray, z: np.ndarray
+) -> np.ndarray | float:
+    """t(x_j[a]) * z[c] of one term (a row of ``TermArrays.rows``) over the batch (N,), or
+    1.0 for a bare constant."""
+    j, a, c, code, _ = term
     f: np.ndarray | float = 1.0
     if a != NONE:
-        f = transform(int(terms.transform[t]), x[:, terms.alternative[t], a])
+        f = transform(code, x[:, j, a])
     if c != NONE:
         f = f * z[:, c]
     return f
@@ -102,6 +105,6 @@ def utility_design(model: CompiledModel, batch: Batch) -> np.ndarray:
     x, z = batch.attributes, batch.context
     terms = model.terms
     out = np.zeros((len(model.beta), len(model.alternatives), batch.size))
-    for t in range(len(terms)):
-        out[terms.coefficient[t], terms.alternative[t]] += _feature(terms, t, x, z)
+    for term in terms.rows:
+        out[term[4], term[0]] += _feature(term, x, z)
     return out
