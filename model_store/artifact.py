@@ -9,6 +9,9 @@ A version lives under ``models/{model}/versions/{version}/``:
 - ``manifest.json``, written last: see :func:`build_manifest`. It carries the sha256 of every
   other file, so a version is either whole and verified or refused.
 
+The data files are stored under names that carry their content (:func:`stored_name`), listed
+in the manifest's ``stored_as``; a manifest without ``stored_as`` has them at the plain names.
+
 Everything here is pure: bytes in, values out. See docs/artifact-format.md.
 """
 
@@ -19,6 +22,7 @@ import hashlib
 import io
 import json
 import math
+import re
 from collections.abc import Mapping
 from typing import Any
 
@@ -32,6 +36,7 @@ FORMAT_VERSION = 1
 MANIFEST = "manifest.json"
 COEFFICIENTS = "coefficients.parquet"
 COVARIANCE = "covariance.parquet"
+_HEX64 = re.compile(r"[0-9a-f]{64}")
 ESTIMATION_FIELDS = {"sample_size": int, "log_likelihood": float, "date": str, "notes": str}
 
 
@@ -45,6 +50,19 @@ class FileFormatError(ValueError):
 
 def sha256(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()
+
+
+def stored_name(name: str, digest: str) -> str:
+    """The name a data file is stored under: ``coefficients.parquet`` with sha256 ``S`` is
+    ``coefficients.{S[:16]}.parquet``, so two different contents never share a key."""
+    stem, dot, ext = name.partition(".")
+    return f"{stem}.{digest[:16]}{dot}{ext}"
+
+
+def stored_names(manifest: Mapping[str, Any]) -> dict[str, str]:
+    """File name -> the name it is stored under (the plain name when ``stored_as`` is absent)."""
+    stored = manifest.get("stored_as") or {}
+    return {name: stored.get(name, name) for name in manifest["files"]}
 
 
 def now_iso() -> str:
@@ -172,12 +190,17 @@ def build_manifest(
     spec_dict: dict[str, Any],
     files: Mapping[str, str],
     published_by: str,
+    stored_as: Mapping[str, str] | None = None,
     estimation: Mapping[str, Any] | None = None,
     parent: str | None = None,
     calibration: Mapping[str, Any] | None = None,
     created_at: str | None = None,
 ) -> dict[str, Any]:
-    """The manifest of format version 1 (``files`` maps file name -> sha256 hex)."""
+    """The manifest of format version 1.
+
+    ``files`` maps file name -> sha256 hex; ``stored_as`` (optional) maps file name -> the name
+    it is stored under, :func:`stored_name` of its digest.
+    """
     manifest: dict[str, Any] = {
         "format_version": FORMAT_VERSION,
         "model": model,
@@ -190,6 +213,8 @@ def build_manifest(
         "spec": spec_dict,
         "files": dict(files),
     }
+    if stored_as is not None:
+        manifest["stored_as"] = dict(stored_as)
     if calibration is not None:
         manifest["calibration"] = dict(calibration)
     return manifest
@@ -229,6 +254,15 @@ def parse_manifest(data: bytes) -> dict[str, Any]:
     for name, digest in files.items():
         if name not in (COEFFICIENTS, COVARIANCE):
             raise FileFormatError(MANIFEST, f"files lists an unknown file {name!r}")
-        if not isinstance(digest, str) or len(digest) != 64:
+        if not isinstance(digest, str) or not _HEX64.fullmatch(digest):
             raise FileFormatError(MANIFEST, f"files.{name} must be a sha256 hex digest")
+    stored = manifest.get("stored_as")
+    if stored is not None:
+        if not isinstance(stored, dict) or set(stored) != set(files):
+            raise FileFormatError(MANIFEST, "stored_as must name exactly the files listed")
+        for name, digest in files.items():
+            if stored[name] != stored_name(name, digest):
+                raise FileFormatError(
+                    MANIFEST, f"stored_as.{name} must be {stored_name(name, digest)!r}"
+                )
     return manifest

@@ -22,7 +22,8 @@ class VersionExists(StoreError):
 class ArtifactError(StoreError):
     """A published version that cannot be trusted: bad checksum, unknown format, bad file.
 
-    ``file`` names the offending key relative to the version (e.g. ``coefficients.parquet``).
+    ``file`` names the offending file of the version (e.g. ``coefficients.parquet``, whatever
+    name it is stored under).
     """
 
     def __init__(self, model: str, version: str, file: str, message: str):

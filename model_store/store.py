@@ -1,8 +1,8 @@
 """The store: publishing and loading immutable versions, and the routing state of each model.
 
 Safe to use from several threads and processes at once: nothing is cached, every write is a
-whole object, and the writes that must not race (a version's manifest, a routing record) are
-create-if-absent on the backend.
+whole object and create-if-absent on the backend (a version's manifest, a routing record, and
+data files under names that carry their content), so nothing written is ever replaced.
 """
 
 from __future__ import annotations
@@ -144,6 +144,14 @@ class Store:
             )
         return manifest
 
+    def stored_key(self, model: str, version: str, file: str) -> str:
+        """The key holding ``file`` (e.g. ``coefficients.parquet``) of a published version."""
+        manifest = self.read_manifest(model, version)
+        stored = artifact.stored_names(manifest)
+        if file not in stored:
+            raise NotFound(f"version {version!r} of model {model!r} has no file {file!r}")
+        return _version_prefix(model, version) + stored[file]
+
     def load_version(self, model: str, version: str) -> LoadedVersion:
         """Load a version, verifying format version, every checksum and the model itself.
 
@@ -151,12 +159,14 @@ class Store:
         """
         manifest = self.read_manifest(model, version)
         prefix = _version_prefix(model, version)
+        stored = artifact.stored_names(manifest)
         blobs: dict[str, bytes] = {}
         for name, digest in manifest["files"].items():
             try:
-                data = self.backend.get(prefix + name)
+                data = self.backend.get(prefix + stored[name])
             except KeyMissing:
-                raise ArtifactError(model, version, name, "missing") from None
+                where = "" if stored[name] == name else f" (stored as {stored[name]})"
+                raise ArtifactError(model, version, name, f"missing{where}") from None
             if artifact.sha256(data) != digest:
                 raise ArtifactError(
                     model, version, name, "checksum mismatch (the file was changed or truncated)"
@@ -193,8 +203,10 @@ class Store:
     ) -> dict[str, Any]:
         """Validate and write a new version; returns its manifest.
 
-        Data files first, the manifest last and create-if-absent: a publish interrupted at any
-        point leaves no visible version, and its leftovers are replaced by the next attempt.
+        Data files first, under names that carry their content (so two publishes of one id
+        never write the same key with different bytes), then the manifest, create-if-absent:
+        the single commit point. A publish interrupted at any point, or beaten to the manifest,
+        leaves no visible version; its data files are unlisted orphans that block nothing.
         Raises :class:`SpecError` (invalid model), :class:`VersionExists` (never overwrites).
         """
         check_name("model", model)
@@ -212,14 +224,17 @@ class Store:
         if coefficients.covariance is not None:
             blobs[COVARIANCE] = artifact.covariance_bytes(coefficients)
         _check_round_trip(blobs, coefficients)
+        files = {name: artifact.sha256(data) for name, data in blobs.items()}
+        stored = {name: artifact.stored_name(name, digest) for name, digest in files.items()}
         for name, data in blobs.items():
-            self.backend.put(prefix + name, data)
+            self._write_content(prefix + stored[name], data)
         manifest = artifact.build_manifest(
             model=model,
             version=version,
             spec=spec,
             spec_dict=spec_to_dict(spec),
-            files={name: artifact.sha256(data) for name, data in blobs.items()},
+            files=files,
+            stored_as=stored,
             published_by=published_by,
             estimation=estimation,
             parent=parent,
@@ -233,6 +248,24 @@ class Store:
             ) from None
         self.load_version(model, version)  # read back: refuse to report success unverified
         return manifest
+
+    def _write_content(self, key: str, data: bytes) -> None:
+        """Create ``key``, whose name carries the sha256 of ``data``; an existing object there is
+        accepted only if it holds the same bytes (a retried or concurrent identical publish)."""
+        try:
+            self.backend.put_new(key, data)
+            return
+        except KeyExists:
+            pass
+        try:
+            same = artifact.sha256(self.backend.get(key)) == artifact.sha256(data)
+        except KeyMissing:  # removed in between: create it again
+            self.backend.put_new(key, data)
+            return
+        if not same:
+            raise StoreError(
+                f"{key}: already holds other bytes than its name says; nothing was overwritten"
+            )
 
     # -- routing ------------------------------------------------------------------------
 

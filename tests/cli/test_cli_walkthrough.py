@@ -132,7 +132,7 @@ def test_stale_generation_is_refused(cli, ferry_files):
 def test_corrupt_version_is_refused_by_show_and_route(cli, ferry_files):
     publish(cli, ferry_files, "v1")
     store = open_store(cli.store_args[1], *cli.store_args[3:4])
-    key = "models/ferry/versions/v1/coefficients.parquet"
+    key = store.stored_key("ferry", "v1", "coefficients.parquet")
     data = store.backend.get(key)
     store.backend.put(key, data[:-7])  # truncated behind the store's back
     result = cli("show", "ferry", "v1")

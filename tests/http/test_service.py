@@ -63,7 +63,7 @@ def test_a_version_that_fails_to_load_is_never_routed(fresh_store):
     store = open_store(fresh_store)
     store.change_routing("harbour", {"v1": 0.5, "v2": 0.5}, reason="split", changed_by="tests")
     # Corrupt v2 after the (validated) change: this replica has not loaded it yet.
-    coefficients = Path(fresh_store) / "models/harbour/versions/v2/coefficients.parquet"
+    coefficients = Path(fresh_store) / store.stored_key("harbour", "v2", "coefficients.parquet")
     coefficients.write_bytes(coefficients.read_bytes()[:-7] + b"garbage")
     app.extensions["choicecast.registry"].refresh()
     r = client.get("/readyz")

@@ -140,7 +140,7 @@ def test_checksums_bind_every_listed_file(tmp_path: Path) -> None:
     """A byte changed in a published file after the fact is refused (sha256 in the manifest)."""
     store = open_store(str(tmp_path / "store"))
     artifacts.publish_good(store, "v1")
-    key = "models/weekend/versions/v1/coefficients.parquet"
+    key = store.stored_key("weekend", "v1", "coefficients.parquet")
     data = bytearray(store.backend.get(key))
     data[len(data) // 2] ^= 0xFF
     store.backend.put(key, bytes(data))

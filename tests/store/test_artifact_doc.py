@@ -10,6 +10,7 @@ from pathlib import Path
 import numpy as np
 
 from model_store import open_store
+from model_store.artifact import parse_manifest
 from model_store.inputs import read_model_inputs
 from service.choice.spec import validate_model
 
@@ -53,9 +54,27 @@ def test_export_snippet_writes_a_loadable_version(tmp_path, monkeypatch):
     (tmp_path / "ferry.json").write_text(blocks("json")[0])
     monkeypatch.chdir(tmp_path)
     runpy.run_path(str(_snippet(tmp_path)))
-    loaded = open_store(str(tmp_path / "store")).load_version("ferry", "v1")
+    store = open_store(str(tmp_path / "store"))
+    loaded = store.load_version("ferry", "v1")
     assert loaded.manifest["published_by"] == "estimation-run-17"
     assert json.loads((tmp_path / "ferry.json").read_text())["name"] == loaded.spec.name
+    # the snippet stores the file under its content-addressed name, as publish does
+    key = store.stored_key("ferry", "v1", "coefficients.parquet")
+    digest = loaded.manifest["files"]["coefficients.parquet"]
+    assert key == f"models/ferry/versions/v1/coefficients.{digest[:16]}.parquet"
+    assert store.backend.list("models/ferry/versions/v1/") == sorted(
+        [key, "models/ferry/versions/v1/manifest.json"]
+    )
+
+
+def test_worked_example_manifest_is_one_the_store_accepts():
+    """The example manifest's envelope parses, and its stored names follow from its digests
+    (the names quoted in the prose too)."""
+    manifest = parse_manifest(blocks("json")[1].encode())
+    for name, digest in manifest["files"].items():
+        stored = manifest["stored_as"][name]
+        assert stored == f"{name.split('.')[0]}.{digest[:16]}.parquet"
+        assert f"`{stored}`" in DOC.read_text()
 
 
 def _snippet(tmp_path: Path) -> Path:

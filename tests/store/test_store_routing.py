@@ -139,7 +139,7 @@ def test_unknown_model_is_refused(ferry: Store):
 
 
 def test_a_version_that_fails_to_load_is_never_routed(ferry: Store):
-    key = "models/ferry/versions/v2/coefficients.parquet"
+    key = ferry.stored_key("ferry", "v2", "coefficients.parquet")
     raw_put(ferry, key, raw_get(ferry, key)[:-10])
     with pytest.raises(RoutingError, match=r"live\.v2: version 'v2' does not load: .*checksum"):
         route(ferry, {"v1": 9, "v2": 1})

@@ -40,17 +40,26 @@ def test_manifest_checksums_are_sha256_of_the_stored_bytes(store: Store):
     assert set(manifest["files"]) == {"coefficients.parquet", "covariance.parquet"}
     for name, digest in manifest["files"].items():
         # hashlib is the reference implementation of FIPS 180-4 sha256
-        assert hashlib.sha256(raw_get(store, V1 + name)).hexdigest() == digest
+        stored = manifest["stored_as"][name]
+        assert hashlib.sha256(raw_get(store, V1 + stored)).hexdigest() == digest
+        # the stored name carries the content: stem, first 16 hex digits, extension
+        stem, ext = name.split(".")
+        assert stored == f"{stem}.{digest[:16]}.{ext}"
+    assert sorted(store.backend.list(V1)) == sorted(
+        [V1 + "manifest.json", *(V1 + n for n in manifest["stored_as"].values())]
+    )
 
 
 def test_coefficient_file_is_plain_parquet(store: Store):
     publish_ferry(store, "v1")
     # read with pyarrow's Parquet reader directly: what an outside tool would see
-    table = pq.read_table(io.BytesIO(raw_get(store, V1 + "coefficients.parquet")))
+    coef_key = store.stored_key("ferry", "v1", "coefficients.parquet")
+    table = pq.read_table(io.BytesIO(raw_get(store, coef_key)))
     assert table.column_names == ["name", "estimate", "std_error"]
     assert table["name"].to_pylist() == list(FERRY_NAMES)
     assert table["std_error"].to_pylist()[-1] is None  # NaN std error stored as null
-    cov = pq.read_table(io.BytesIO(raw_get(store, V1 + "covariance.parquet")))
+    cov_key = store.stored_key("ferry", "v1", "covariance.parquet")
+    cov = pq.read_table(io.BytesIO(raw_get(store, cov_key)))
     assert cov.column_names == ["name", *FERRY_NAMES]
 
 
@@ -70,10 +79,10 @@ def test_listing_is_natural_and_only_of_published(store: Store):
 
 def test_existing_version_is_refused_and_unchanged(store: Store):
     publish_ferry(store, "v1")
-    before = {n: raw_get(store, V1 + n) for n in ("manifest.json", "coefficients.parquet")}
+    before = {k: raw_get(store, k) for k in store.backend.list(V1)}
     with pytest.raises(VersionExists, match="already published"):
         publish_ferry(store, "v1", shift=1.0)
-    after = {n: raw_get(store, V1 + n) for n in before}
+    after = {k: raw_get(store, k) for k in store.backend.list(V1)}
     assert after == before
     assert store.load_version("ferry", "v1").coefficients.estimates[0] == pytest.approx(0.8)
 
@@ -120,9 +129,10 @@ def test_interrupted_publish_leaves_nothing_visible(store: Store, writes_before_
 
 def test_checksum_mismatch_refuses_the_version(store: Store):
     publish_ferry(store, "v1")
-    data = bytearray(raw_get(store, V1 + "coefficients.parquet"))
+    key = store.stored_key("ferry", "v1", "coefficients.parquet")
+    data = bytearray(raw_get(store, key))
     data[len(data) // 2] ^= 0x01
-    raw_put(store, V1 + "coefficients.parquet", bytes(data))
+    raw_put(store, key, bytes(data))
     with pytest.raises(ArtifactError, match=r"coefficients\.parquet: checksum mismatch") as info:
         store.load_version("ferry", "v1")
     assert info.value.file == "coefficients.parquet"
@@ -130,8 +140,9 @@ def test_checksum_mismatch_refuses_the_version(store: Store):
 
 def test_truncated_file_refuses_the_version(store: Store):
     publish_ferry(store, "v1")
-    data = raw_get(store, V1 + "covariance.parquet")
-    raw_put(store, V1 + "covariance.parquet", data[: len(data) // 3])
+    key = store.stored_key("ferry", "v1", "covariance.parquet")
+    data = raw_get(store, key)
+    raw_put(store, key, data[: len(data) // 3])
     with pytest.raises(ArtifactError, match=r"covariance\.parquet: checksum mismatch"):
         store.load_version("ferry", "v1")
 

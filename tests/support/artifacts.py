@@ -188,9 +188,13 @@ def plant_version(
     """
     src, dst = _prefix(model, source), _prefix(model, target)
     body = json.loads(store.backend.get(src + MANIFEST))
+    body.pop("stored_as", None)  # the copy keeps its files at the plain names
     for name in body["files"]:
         store.backend.put(
-            dst + name, data if name == COEFFICIENTS else store.backend.get(src + name)
+            dst + name,
+            data
+            if name == COEFFICIENTS
+            else store.backend.get(store.stored_key(model, source, name)),
         )
     if manifest:
         body["version"] = target
@@ -198,4 +202,4 @@ def plant_version(
 
 
 def original_coefficients(store: Store, model: str, version: str) -> bytes:
-    return store.backend.get(_prefix(model, version) + COEFFICIENTS)
+    return store.backend.get(store.stored_key(model, version, COEFFICIENTS))
