@@ -23,6 +23,7 @@ from model_store.errors import (
     RoutingConflict,
     RoutingError,
     StoreError,
+    StoreUnavailable,
     VersionExists,
 )
 from model_store.routing import RoutingState
@@ -252,20 +253,22 @@ class Store:
     def _write_content(self, key: str, data: bytes) -> None:
         """Create ``key``, whose name carries the sha256 of ``data``; an existing object there is
         accepted only if it holds the same bytes (a retried or concurrent identical publish)."""
-        try:
-            self.backend.put_new(key, data)
-            return
-        except KeyExists:
-            pass
-        try:
-            same = artifact.sha256(self.backend.get(key)) == artifact.sha256(data)
-        except KeyMissing:  # removed in between: create it again
-            self.backend.put_new(key, data)
-            return
-        if not same:
+        for _ in range(3):  # an object removed between the two calls is created again
+            try:
+                self.backend.put_new(key, data)
+                return
+            except KeyExists:
+                pass
+            try:
+                existing = self.backend.get(key)
+            except KeyMissing:
+                continue
+            if artifact.sha256(existing) == artifact.sha256(data):
+                return
             raise StoreError(
                 f"{key}: already holds other bytes than its name says; nothing was overwritten"
             )
+        raise StoreUnavailable(f"store {self.uri}: {key} keeps appearing and disappearing")
 
     # -- routing ------------------------------------------------------------------------
 

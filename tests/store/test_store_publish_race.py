@@ -14,6 +14,7 @@ from store_cases import FERRY_SPEC, ferry_coefficients, raw_get, raw_put
 
 from model_store import ArtifactError, NotFound, Store, StoreError, VersionExists, open_store
 from model_store.artifact import build_manifest, coefficients_bytes, manifest_bytes
+from model_store.backends.base import KeyExists
 from service.choice.spec import spec_from_dict, spec_to_dict
 
 V1 = "models/ferry/versions/v1/"
@@ -148,6 +149,53 @@ def test_identical_concurrent_publishes_share_the_data_files(store: Store):
     first.finish()
     check_winner(store, second, first)
     assert len(store.backend.list(V1)) == WRITES
+
+
+class FailAfter(Gate):
+    """Writes fail after ``n`` succeeded (a publish killed there)."""
+
+    def _count(self) -> None:
+        if self.writes == self.pause_before:
+            raise KeyboardInterrupt("killed")
+        self.writes += 1
+
+
+@pytest.mark.parametrize("writes_before_kill", [1, 2])
+def test_a_retry_with_the_same_contents_reuses_the_verified_leftovers(
+    store: Store, writes_before_kill: int
+):
+    spec, coefficients = spec_from_dict(FERRY_SPEC), ferry_coefficients()
+    with pytest.raises(KeyboardInterrupt):
+        Store(FailAfter(store.backend, writes_before_kill)).publish(
+            "ferry", "v1", spec, coefficients, published_by="t"
+        )
+    leftovers = {k: raw_get(store, k) for k in store.backend.list(V1)}
+    assert len(leftovers) == writes_before_kill and store.list_versions("ferry") == []
+    store.publish("ferry", "v1", spec, coefficients, published_by="t")
+    after = {k: raw_get(store, k) for k in store.backend.list(V1)}
+    assert {k: after[k] for k in leftovers} == leftovers and len(after) == WRITES
+    loaded = store.load_version("ferry", "v1")
+    np.testing.assert_array_equal(loaded.coefficients.estimates, coefficients.estimates)
+
+
+class VanishOnce(Gate):
+    """The first create-if-absent finds the key present, which is gone when read back (an
+    orphan deleted by hand in between)."""
+
+    def put_new(self, key, data):
+        self.writes += 1
+        if self.writes == 1:
+            raise KeyExists(key)
+        self.inner.put_new(key, data)
+
+
+def test_a_data_key_removed_between_create_and_read_back_is_created_again(store: Store):
+    spec, coefficients = spec_from_dict(FERRY_SPEC), ferry_coefficients()
+    Store(VanishOnce(store.backend, None)).publish(
+        "ferry", "v1", spec, coefficients, published_by="t"
+    )
+    loaded = store.load_version("ferry", "v1")
+    np.testing.assert_array_equal(loaded.coefficients.estimates, coefficients.estimates)
 
 
 def test_a_key_holding_other_bytes_than_its_name_says_is_never_overwritten(store: Store):
