@@ -130,43 +130,43 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
     policy = model.spec.range_policy
     sink = problems if policy == "reject" else warnings
     clips: list[tuple[ValueChecks, np.ndarray, bool]] = []
-    for all_checks, arr, cells in (
-        (model.attribute_checks, batch.attributes, True),
-        (model.context_checks, batch.context, False),
-    ):
-        # One pass decides whether finiteness needs checking value by value: a sum is
-        # finite only if every term is (an overflowing sum just takes the long way).
-        with np.errstate(over="ignore", invalid="ignore"):
+    # NaN and inf are findings here, not accidents: one errstate for the sums and comparisons.
+    with np.errstate(over="ignore", invalid="ignore"):
+        for all_checks, arr, cells in (
+            (model.attribute_checks, batch.attributes, True),
+            (model.context_checks, batch.context, False),
+        ):
+            # One pass decides whether finiteness needs checking value by value: a sum is
+            # finite only if every term is (an overflowing sum just takes the long way).
             all_finite = bool(np.isfinite(arr.sum()))
-        checks = all_checks.bounded_checks if all_finite else all_checks
-        if not len(checks):
-            continue
-        clip = np.zeros(len(checks), dtype=bool)
-        step = max(1, CHUNK_VALUES // len(checks))
-        for start in range(0, n, step):
-            stop = min(n, start + step)
-            problems.settle(start)
-            sink.settle(start)
-            if cells:
-                values = arr[start:stop][:, checks.alternative, checks.index]
-                live = avail[start:stop][:, checks.alternative]
-            else:
-                values = arr[start:stop][:, checks.index]
-                live = np.ones_like(values, dtype=bool)
-            if all_finite:
-                judged = live
-            else:
-                finite = np.isfinite(values)
-                message = "must be given as a finite number (got {v})"
-                problems.add(live & ~finite, checks.fields, message, values, start)
-                judged = live & finite
-            with np.errstate(invalid="ignore"):
+            checks = all_checks.bounded_checks if all_finite else all_checks
+            if not len(checks):
+                continue
+            clip = np.zeros(len(checks), dtype=bool)
+            step = max(1, CHUNK_VALUES // len(checks))
+            for start in range(0, n, step):
+                stop = min(n, start + step)
+                problems.settle(start)
+                sink.settle(start)
+                if cells:
+                    values = arr[start:stop][:, checks.alternative, checks.index]
+                    live = avail[start:stop][:, checks.alternative]
+                else:
+                    values = arr[start:stop][:, checks.index]
+                    live = np.ones_like(values, dtype=bool)
+                if all_finite:
+                    judged = live
+                else:
+                    finite = np.isfinite(values)
+                    message = "must be given as a finite number (got {v})"
+                    problems.add(live & ~finite, checks.fields, message, values, start)
+                    judged = live & finite
                 outside_domain = judged & (values <= checks.domain)
                 outside_range = judged & ((values < checks.low) | (values > checks.high))
-            problems.add(outside_domain, checks.fields, checks.domain_messages, values, start)
-            sink.add(outside_range, checks.fields, checks.range_messages, values, start)
-            clip |= outside_range.any(axis=0)
-        clips.append((checks, clip, cells))
+                problems.add(outside_domain, checks.fields, checks.domain_messages, values, start)
+                sink.add(outside_range, checks.fields, checks.range_messages, values, start)
+                clip |= outside_range.any(axis=0)
+            clips.append((checks, clip, cells))
 
     scored = batch
     if policy == "clip" and any(clip.any() for _, clip, _ in clips):

@@ -21,11 +21,11 @@ block is read from memory once and then from cache for every alternative."""
 def transform(code: int, x: np.ndarray) -> np.ndarray:
     """t(x) for identity / log / log1p.  Outside the domain (only ever in cells of an
     unavailable alternative, which check_batch leaves alone) the result is NaN/-inf and is
-    masked by the caller."""
+    masked by the caller, which runs this under ``np.errstate(divide="ignore",
+    invalid="ignore")`` (one errstate per loop over terms, not one per term)."""
     if code == IDENTITY:
         return x
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return np.log(x) if code == LOG else np.log1p(x)
+    return np.log(x) if code == LOG else np.log1p(x)
 
 
 def transform_slope(code: int, x: np.ndarray) -> np.ndarray:
@@ -51,7 +51,7 @@ def utilities(model: CompiledModel, batch: Batch) -> np.ndarray:
     v += model.constants[:, None]
     beta = model.beta
     # Overflow gives an infinite or NaN utility, which choice_probabilities refuses by name.
-    with np.errstate(over="ignore", invalid="ignore"):
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
         for term in model.general_terms.rows:
             v[term[0]] += beta[term[4]] * _feature(term, x, z)
     return v
@@ -93,10 +93,11 @@ def context_slopes(model: CompiledModel, batch: Batch, variable: int) -> np.ndar
     x = batch.attributes
     terms = model.terms
     out = np.zeros((len(model.alternatives), batch.size))
-    for t in np.flatnonzero(terms.context == variable):
-        j, a = terms.alternative[t], terms.attribute[t]
-        f = 1.0 if a == NONE else transform(int(terms.transform[t]), x[:, j, a])
-        out[j] += model.beta[terms.coefficient[t]] * f
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for t in np.flatnonzero(terms.context == variable):
+            j, a = terms.alternative[t], terms.attribute[t]
+            f = 1.0 if a == NONE else transform(int(terms.transform[t]), x[:, j, a])
+            out[j] += model.beta[terms.coefficient[t]] * f
     return out
 
 
@@ -105,6 +106,7 @@ def utility_design(model: CompiledModel, batch: Batch) -> np.ndarray:
     x, z = batch.attributes, batch.context
     terms = model.terms
     out = np.zeros((len(model.beta), len(model.alternatives), batch.size))
-    for term in terms.rows:
-        out[term[4], term[0]] += _feature(term, x, z)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for term in terms.rows:
+            out[term[4], term[0]] += _feature(term, x, z)
     return out
