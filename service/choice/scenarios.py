@@ -182,6 +182,19 @@ def _check_variants(model: CompiledModel, variants: Sequence[Variant]) -> None:
                 problems.append(Problem(f"{cp}.alternative", f"{ch.alternative!r} is unknown"))
             if ch.attribute not in model.attributes:
                 problems.append(Problem(f"{cp}.attribute", f"{ch.attribute!r} is unknown"))
+            elif (
+                ch.alternative in model.alternatives
+                and not model.required[
+                    model.alternative_index(ch.alternative), model.attribute_index(ch.attribute)
+                ]
+            ):
+                # A change that cannot move any probability is a mistake in the request.
+                problems.append(
+                    Problem(
+                        f"{cp}.attribute",
+                        f"{ch.attribute!r} does not enter the utility of {ch.alternative!r}",
+                    )
+                )
             if ch.op not in OPS:
                 problems.append(Problem(f"{cp}.op", f"must be one of {', '.join(OPS)}"))
             if isinstance(ch.value, bool) or not (

@@ -200,3 +200,13 @@ def test_surplus_change_matches_a_simulation_of_the_random_utility_model():
             diff.mean(),
             out.surplus_change[n],
         )
+
+
+def test_a_change_to_an_attribute_the_alternative_does_not_use_is_refused(mnl):
+    # The commute model's car has no waiting time: a change to it could move nothing, so it
+    # is a mistake in the request, named by field (common practice: refuse, do not ignore).
+    base = commute_batch(mnl, 3)
+    with pytest.raises(ScoringError) as err:
+        run_scenarios(mnl, base, [Variant("car wait", changes=(Change("car", "wait", "add", 5),))])
+    assert [p.path for p in err.value.problems] == ["variants[0].changes[0].attribute"]
+    assert "does not enter the utility of 'car'" in err.value.problems[0].message
