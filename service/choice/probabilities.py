@@ -63,10 +63,16 @@ def choice_probabilities(model: CompiledModel, v: np.ndarray, available: np.ndar
     return _nested(model, v, available) if model.nested else _multinomial(v, available, top)
 
 
-def _multinomial(v: np.ndarray, available: np.ndarray, m: np.ndarray | None = None) -> ChoiceState:
-    """In place: ``v`` becomes P; ``m`` is the maximum of ``v`` over alternatives if known."""
-    m = v.max(axis=0) if m is None else m
-    shift = np.where(np.isfinite(m), m, 0.0)
+def _multinomial(
+    v: np.ndarray, available: np.ndarray, top: np.ndarray | None = None
+) -> ChoiceState:
+    """In place: ``v`` becomes P; ``top`` is the maximum of ``v`` over alternatives when it
+    is known and finite in every situation (else it is computed, -inf shifted by 0)."""
+    if top is None:
+        m = v.max(axis=0)
+        shift = np.where(np.isfinite(m), m, 0.0)
+    else:
+        shift = top
     p = v
     p -= shift
     np.exp(p, out=p)

@@ -60,7 +60,7 @@ def require_finite(result: ScoreResult, locate: Callable[[BatchProblem], str]) -
         ]
     errors: list[FieldError] = []
     for name, arr in arrays:
-        if arr is None:
+        if arr is None or np.isfinite(arr).all():
             continue
         bad = ~np.isfinite(arr.reshape(arr.shape[0], -1)).all(axis=1)
         for i in np.flatnonzero(bad)[:20]:
