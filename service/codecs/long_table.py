@@ -194,7 +194,7 @@ def batch_from_table(
             problems.whole(name, "context variable the model uses: column is missing")
     for alt, attr in model.required_attributes:
         if attr not in table.column_names:
-            problems.whole(attr, f"attribute {alt!r} uses: column is missing")
+            problems.whole(attr, f"alternative {alt!r} uses attribute {attr!r}: column is missing")
     empty = Batch(
         attributes=np.zeros((0, n_j, n_a)),
         context=np.zeros((0, n_c)),
