@@ -123,7 +123,7 @@ def _complete_batch(
     """The batch of a complete, ordered table: every column reshapes to (N, J) in place."""
     n_j = len(model.alternatives)
     available = available_row.reshape(n, n_j).copy()
-    x = np.where(model.required, np.nan, 0.0)[None].repeat(n, axis=0)
+    x = model.unset_values[0][None].repeat(n, axis=0)
     for a, attr in enumerate(model.attributes):
         if attr not in table.column_names:
             continue
@@ -154,7 +154,7 @@ def _complete_batch(
             problems.rows(nulls, name, "is null")
         return grid[:, 0].copy()
 
-    z = np.where(model.required_context_mask, np.nan, 0.0)[None].repeat(n, axis=0)
+    z = model.unset_values[1][None].repeat(n, axis=0)
     for c, name in enumerate(model.context):
         if name in table.column_names and model.required_context_mask[c]:
             column = per_situation(name)
@@ -260,7 +260,7 @@ def batch_from_table(
     available = np.zeros((n, n_j), dtype=bool)
     available.reshape(-1)[r_cell] = available_row if every else available_row[use]
 
-    x = np.where(model.required, np.nan, 0.0)[None].repeat(n, axis=0)
+    x = model.unset_values[0][None].repeat(n, axis=0)
     flat_x = x.reshape(-1)
     for a, attr in enumerate(model.attributes):
         if attr not in table.column_names:
@@ -279,7 +279,7 @@ def batch_from_table(
         picked = values if every else values[use]
         flat_x[r_cell * n_a + a] = picked if used.all() else np.where(used, picked, 0.0)
 
-    z = np.where(model.required_context_mask, np.nan, 0.0)[None].repeat(n, axis=0)
+    z = model.unset_values[1][None].repeat(n, axis=0)
     for c, name in enumerate(model.context):
         if name not in table.column_names:
             continue
