@@ -14,7 +14,7 @@ from flask import request
 from marshmallow import ValidationError
 
 from service.choice import BatchCheck, ScoreOptions, ScoreResult, ScoringError, check_batch, score
-from service.choice.checks import MAX_REPORTED
+from service.choice.probabilities import UtilityNotFinite
 
 from . import metrics
 from .codecs.arrow import MEDIA_TYPE as ARROW
@@ -26,6 +26,7 @@ from .codecs.results import Outputs, require_finite
 from .codecs.rows import decode_rows
 from .context import settings
 from .problems import (
+    ApiError,
     FieldError,
     bad_request,
     marshmallow_errors,
@@ -162,6 +163,26 @@ def decode(parsed: ParsedRequest, model: Any) -> Decoded:
     return decoded
 
 
+def refusal(decoded: Decoded, check: BatchCheck) -> ApiError:
+    """The 422 of a request whose values fail decoding or :func:`check_batch`: the first
+    problems by field and the true count (a field named twice counts once)."""
+    listed, count = decoded.refusals(check)
+    omitted = count - len(listed)
+    more = f" ({omitted} more not listed)" if omitted > 0 else ""
+    return unprocessable(f"{count} value(s) cannot be scored{more}", listed)
+
+
+def not_finite(decoded: Decoded, exc: UtilityNotFinite) -> ApiError:
+    """The 422 of situations whose inputs passed the checks but overflow a utility, each named
+    in the request's own form (as :func:`refusal` names check findings)."""
+    listed = decoded.errors(exc.situations)
+    omitted = exc.count - len(listed)
+    more = f" ({omitted} more not listed)" if omitted > 0 else ""
+    return unprocessable(
+        f"{exc.count} situation(s) cannot be scored: an input value is too large{more}", listed
+    )
+
+
 def options_path(path: str, form: str) -> str:
     """A core option path (``options.elasticities[0]``) as the caller wrote it."""
     if path.startswith("options."):
@@ -176,11 +197,7 @@ def run_score(
     """Check then score; every refusal is a 422 naming the fields."""
     check = check_batch(model, decoded.batch)
     if check.problems or decoded.problems:
-        count = check.problem_count + len(decoded.problems)
-        listed = decoded.refusals(check.problems)[:MAX_REPORTED]
-        omitted = count - len(listed)
-        more = f" ({omitted} more not listed)" if omitted > 0 else ""
-        raise unprocessable(f"{count} value(s) cannot be scored{more}", listed)
+        raise refusal(decoded, check)
     options = ScoreOptions(
         probabilities=True,
         logsum=outputs.logsum or outputs.expected_max_utility,
@@ -194,6 +211,8 @@ def run_score(
         # below and refused with 422, so numpy's warnings would only be noise.
         with np.errstate(all="ignore"):
             result = score(model, check.batch, options)
+    except UtilityNotFinite as exc:
+        raise not_finite(decoded, exc) from None
     except ScoringError as exc:
         raise unprocessable(
             "the options cannot be served by this model version",

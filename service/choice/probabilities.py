@@ -9,13 +9,33 @@ Train (2009) section and equation numbers are cited from memory.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
 
+from service.choice.batch import BatchProblem
 from service.choice.compiled import CompiledModel
 from service.choice.errors import ScoringError
 from service.choice.spec import Problem
+
+MAX_LISTED = 10
+"""At most this many situations are named by :class:`UtilityNotFinite`."""
+
+
+class UtilityNotFinite(ScoringError):
+    """Situations that cannot be scored although their inputs passed the checks: an input
+    value so large that a utility overflows (NaN or +inf), or no available alternative in an
+    unchecked batch.  ``.situations`` are batch problems (situation index, field), so the
+    caller names them in its own request form as it names :func:`check_batch` findings."""
+
+    def __init__(self, situations: Sequence[BatchProblem], count: int | None = None):
+        self.situations = tuple(situations)
+        self.count = len(self.situations) if count is None else count
+        """How many situations fail (only the first :data:`MAX_LISTED` are listed)."""
+        super().__init__(
+            [Problem(f"situations[{p.situation}]", p.message) for p in self.situations]
+        )
 
 
 @dataclass(frozen=True, eq=False)
@@ -44,23 +64,27 @@ def choice_probabilities(model: CompiledModel, v: np.ndarray, available: np.ndar
     Multinomial / binary logit (Train 2009, eq. 3.6, from memory): P_i = exp V_i / sum_j exp V_j.
     Nested logit (Train 2009, eq. 4.2, from memory): P_i = exp(V_i/l_k) (sum_{j in k} exp(V_j/l_k))^(l_k-1)
     / sum_m (sum_{j in m} exp(V_j/l_m))^(l_m), computed as P(k) * P(i | k) (sec. 4.2.3).
-    Raises :class:`ScoringError` if a situation has no available alternative, or an
+    Raises :class:`UtilityNotFinite` if a situation has no available alternative, or an
     available alternative with a NaN or +inf utility (an unchecked batch, or overflow).
     """
     np.copyto(v, -np.inf, where=~available)
     top = v.max(axis=0)
     bad = np.flatnonzero(~np.isfinite(top))
     if bad.size:
-        raise ScoringError(
-            [
-                Problem(
-                    f"situations[{int(i)}]",
-                    "no available alternative or a non-finite utility (check the batch first)",
-                )
-                for i in bad[:10]
-            ]
-        )
+        listed = [_not_finite(model, v, available, int(n)) for n in bad[:MAX_LISTED]]
+        raise UtilityNotFinite(listed, int(bad.size))
     return _nested(model, v, available) if model.nested else _multinomial(v, available, top)
+
+
+def _not_finite(model: CompiledModel, v: np.ndarray, available: np.ndarray, n: int) -> BatchProblem:
+    """Why situation ``n`` has no finite maximum utility, naming the alternatives at fault."""
+    if not available[:, n].any():
+        return BatchProblem(n, ("available",), "no alternative is available")
+    wrong = available[:, n] & ~(v[:, n] < np.inf)  # NaN or +inf
+    if not wrong.any():
+        wrong = available[:, n]  # every available utility is -inf
+    names = ", ".join(model.alternatives[j] for j in np.flatnonzero(wrong))
+    return BatchProblem(n, (), f"a utility is not finite ({names}): an input value overflows")
 
 
 def _multinomial(

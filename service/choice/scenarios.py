@@ -18,10 +18,10 @@ import numpy as np
 
 from service.choice.aggregate import shares
 from service.choice.batch import Batch, BatchProblem
-from service.choice.checks import check_batch
+from service.choice.checks import BatchCheck, check_batch
 from service.choice.compiled import CompiledModel
 from service.choice.errors import ScoringError
-from service.choice.probabilities import choice_probabilities
+from service.choice.probabilities import UtilityNotFinite, choice_probabilities
 from service.choice.spec import Problem
 from service.choice.utility import utilities
 from service.choice.welfare import marginal_utility_of_money
@@ -87,12 +87,19 @@ class ScenarioResult:
     """Why surplus changes are absent (no cost attribute, non-negative cost coefficient ...)."""
 
 
-def run_scenarios(model: CompiledModel, base: Batch, variants: Sequence[Variant]) -> ScenarioResult:
+def run_scenarios(
+    model: CompiledModel, base: Batch | BatchCheck, variants: Sequence[Variant]
+) -> ScenarioResult:
     """Score the base and every variant; raises :class:`ScoringError` naming the variant
     field at fault (unknown names, missing values of an added alternative, a situation
-    left with no alternative, an override outside a log domain, ...)."""
+    left with no alternative, an override outside a log domain, ...).
+
+    ``base`` is a batch, checked here, or the :class:`BatchCheck` of a batch the caller has
+    checked already (trusted as it is, not checked again).  A base situation whose utility
+    overflows raises :class:`UtilityNotFinite` (its situations index the base batch).
+    """
     _check_variants(model, variants)
-    base_check = check_batch(model, base)
+    base_check = base if isinstance(base, BatchCheck) else check_batch(model, base)
     if base_check.problems:
         raise ScoringError([_problem_path("base", p) for p in base_check.problems])
     base = base_check.batch
@@ -108,7 +115,7 @@ def run_scenarios(model: CompiledModel, base: Batch, variants: Sequence[Variant]
         why = "the model has no attribute with role 'cost'"
 
     w = base.weights
-    base_out = _outcome(model, "base", base, base_check.warnings, "base")
+    base_out = _outcome(model, "base", base, base_check.warnings, None)
     outcomes = []
     for i, (v, (batch, warns)) in enumerate(zip(variants, batches, strict=True)):
         out = _outcome(model, v.name, batch, warns, f"variants[{i}]")
@@ -143,13 +150,19 @@ def _outcome(
     name: str,
     batch: Batch,
     warnings: tuple[BatchProblem, ...],
-    path: str,
+    path: str | None,
 ) -> Outcome:
+    """Shares, logsums and revenue of one batch; ``path`` names a variant (None: the base,
+    whose overflowing situations are left for the caller to locate)."""
     available = batch.available.T
     try:
         state = choice_probabilities(model, utilities(model, batch), available)
-    except ScoringError as e:
-        raise ScoringError([Problem(f"{path}.{p.path}", p.message) for p in e.problems]) from e
+    except UtilityNotFinite as e:
+        if path is None:
+            raise
+        raise ScoringError(
+            [Problem(path, f"situation {p.situation}: {p.message}") for p in e.situations]
+        ) from e
     p = state.probabilities
     revenue = revenue_total = None
     if model.cost_attribute is not None:

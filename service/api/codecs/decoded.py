@@ -5,7 +5,8 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
-from service.choice import Batch, BatchProblem
+from service.choice import Batch, BatchCheck, BatchProblem
+from service.choice.checks import MAX_REPORTED
 
 from ..problems import FieldError
 
@@ -36,14 +37,17 @@ class Decoded:
             FieldError(self.locate(p), MISSING if self.absent(p) else p.message) for p in problems
         ]
 
-    def refusals(self, problems: Sequence[BatchProblem]) -> list[FieldError]:
-        """Decoding problems, then the check's problems of fields not already named (a value
-        that failed to decode is not reported again as missing)."""
+    def refusals(self, check: BatchCheck) -> tuple[list[FieldError], int]:
+        """The problems to list (decoding problems, then the check's problems of fields not
+        already named: a value that failed to decode is not reported again as missing), at
+        most :data:`MAX_REPORTED`, and how many distinct problems there are in all."""
         if self.problems and self.batch.size == 0:
-            return list(self.problems)
+            return list(self.problems[:MAX_REPORTED]), len(self.problems)
         named = tuple(e.path for e in self.problems)
-        later = [e for e in self.errors(problems) if not e.path.startswith(named)]
-        return [*self.problems, *later]
+        found = self.errors(check.problems)
+        later = [e for e in found if not e.path.startswith(named)]
+        count = len(self.problems) + check.problem_count - (len(found) - len(later))
+        return [*self.problems, *later][:MAX_REPORTED], count
 
 
 def rows_locator(root: str) -> Locate:

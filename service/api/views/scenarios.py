@@ -14,7 +14,7 @@ import numpy as np
 from flask import Blueprint, Response, g
 
 from service.choice import Change, ScoringError, Variant, check_batch, run_scenarios
-from service.choice.checks import MAX_REPORTED
+from service.choice.probabilities import UtilityNotFinite
 
 from .. import auth
 from ..codecs.columns import column_length, decode_columns
@@ -22,7 +22,7 @@ from ..codecs.rows import decode_rows
 from ..context import settings, tokens
 from ..problems import FieldError, bad_request, unprocessable
 from ..schemas import ScenarioRequestSchema
-from ..scoring_flow import check_size, dumps, read_json, situation_count
+from ..scoring_flow import check_size, dumps, not_finite, read_json, refusal, situation_count
 from .models import load
 from .scoring import choose
 
@@ -80,10 +80,7 @@ def scenarios(name: str) -> Response:
     g.situations = decoded.batch.size
     check = check_batch(model, decoded.batch)
     if decoded.problems or check.problems:
-        raise unprocessable(
-            f"{len(decoded.problems) + check.problem_count} value(s) cannot be scored",
-            decoded.refusals(check.problems)[:MAX_REPORTED],
-        )
+        raise refusal(decoded, check)
     variants = [
         Variant(
             name=v["name"],
@@ -95,7 +92,9 @@ def scenarios(name: str) -> Response:
     ]
     try:
         with np.errstate(all="ignore"):  # non-finite results are refused below (422)
-            result = run_scenarios(model, decoded.batch, variants)
+            result = run_scenarios(model, check, variants)
+    except UtilityNotFinite as exc:
+        raise not_finite(decoded, exc) from None
     except ScoringError as exc:
         raise unprocessable(
             "the scenario cannot be scored",

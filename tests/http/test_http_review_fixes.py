@@ -1,0 +1,140 @@
+"""Refusals name the field at fault in the request's own form, count each problem once, and
+bound the work a request may cause; results never show a negative zero."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+from http_models import arrow_bytes, coefficients, columns, long_table, seed_store, situation
+from http_models import spec_dict as harbour_spec
+
+from model_store import open_store
+from service.api import create_app
+from service.choice import Coefficients, spec_from_dict
+
+ARROW = "application/vnd.apache.arrow.stream"
+SCORE = "/v1/models/{model}/versions/v1/score"
+SCENARIOS = "/v1/models/{model}/scenarios"
+
+
+def overflow_spec() -> dict:
+    """``harbour`` with a time x income interaction on bike: a very large time and a very
+    negative income give bike a utility of +inf while every value passes the checks."""
+    spec = harbour_spec()
+    spec["name"] = "overflow"
+    spec["utilities"]["bike"].append(
+        {"coefficient": "b_time_income_bike", "attribute": "time", "context": "income"}
+    )
+    return spec
+
+
+@pytest.fixture(scope="module")
+def client(tmp_path_factory: pytest.TempPathFactory):
+    path: Path = tmp_path_factory.mktemp("review-store") / "store"
+    seed_store(path)
+    store = open_store(str(path))
+    estimates = dict(zip(coefficients("v1").names, coefficients("v1").estimates, strict=True))
+    estimates["b_time_income_bike"] = -0.001
+    store.publish(
+        "overflow",
+        "v1",
+        spec_from_dict(overflow_spec()),
+        Coefficients.from_mapping(estimates),
+        published_by="tests",
+    )
+    store.change_routing("overflow", {"v1": 1.0}, reason="first release", changed_by="tests")
+    app = create_app({"store": str(path), "poll_seconds": 0, "access_log": False})
+    return app.test_client()
+
+
+def overflowing(i: int = 0) -> dict:
+    s = situation(i, bike__time=1e200)
+    s["context"]["income"] = -1e200
+    return s
+
+
+def refusal(r, status: int = 422) -> dict:
+    assert r.status_code == status, r.get_data(as_text=True)
+    assert r.mimetype == "application/problem+json"
+    return r.get_json()
+
+
+def assert_overflow_named(body: dict, path: str) -> None:
+    # A utility that overflows is the input's fault: the detail says the input cannot be
+    # scored (not the options), the message says why, the path is in the request's form.
+    assert [e["path"] for e in body["errors"]] == [path]
+    assert "cannot be scored" in body["detail"] and "options" not in body["detail"]
+    message = body["errors"][0]["message"]
+    assert "not finite" in message and "overflows" in message and "bike" in message
+    assert "check the batch" not in message
+
+
+def test_overflow_is_located_in_rows_columns_and_arrow(client):
+    url = SCORE.format(model="overflow")
+    rows = client.post(url, json={"situations": [situation(0), overflowing(1)]})
+    assert_overflow_named(refusal(rows), "$.situations[1]")
+    cols = client.post(url, json={"columns": columns([situation(0), overflowing(1)])})
+    assert_overflow_named(refusal(cols), "$.columns[1]")
+    table = long_table([situation(0), overflowing(1)])
+    arrow = client.post(url, data=arrow_bytes(table), headers={"Content-Type": ARROW})
+    assert_overflow_named(refusal(arrow), "situation[s1]")
+
+
+def test_overflow_of_a_scenario_base_names_the_request_situation(client):
+    url = SCENARIOS.format(model="overflow")
+    variants = [{"name": "v", "remove": ["ferry"]}]
+    rows = client.post(url, json={"situations": [overflowing(0)], "variants": variants})
+    assert_overflow_named(refusal(rows), "$.situations[0]")
+    cols = client.post(url, json={"columns": columns([overflowing(0)]), "variants": variants})
+    assert_overflow_named(refusal(cols), "$.columns[0]")
+
+
+def test_overflow_caused_by_a_variant_names_the_variant(client):
+    base = situation(0)
+    base["context"]["income"] = -1e200  # finite utilities at the base's times
+    change = {"alternative": "bike", "attribute": "time", "op": "set", "value": 1e200}
+    r = client.post(
+        SCENARIOS.format(model="overflow"),
+        json={"situations": [base], "variants": [{"name": "slow", "changes": [change]}]},
+    )
+    body = refusal(r)
+    assert [e["path"] for e in body["errors"]] == ["$.variants[0]"]
+    assert "situation 0" in body["errors"][0]["message"]
+    assert "overflows" in body["errors"][0]["message"]
+
+
+@pytest.mark.parametrize("endpoint", [SCORE, SCENARIOS])
+def test_a_value_named_once_is_counted_once(client, endpoint):
+    # A fare given as text fails decoding and leaves its cell NaN; check_batch finds that cell
+    # too, but it is one problem: listed once and counted once.
+    bad = situation(0)
+    bad["attributes"]["ferry"]["fare"] = "three"
+    body: dict = {"situations": [bad]}
+    if endpoint == SCENARIOS:
+        body["variants"] = [{"name": "v", "remove": ["taxi"]}]
+    out = refusal(client.post(endpoint.format(model="harbour"), json=body))
+    assert [e["path"] for e in out["errors"]] == ["$.situations[0].attributes.ferry.fare"]
+    assert out["detail"] == "1 value(s) cannot be scored"
+
+
+def test_scenarios_check_the_base_once(client, monkeypatch):
+    import service.api.views.scenarios as view
+    import service.choice.scenarios as core
+
+    calls: list[int] = []
+    original = core.check_batch
+
+    def counting(model, batch, *args, **kwargs):
+        calls.append(batch.size)
+        return original(model, batch, *args, **kwargs)
+
+    monkeypatch.setattr(core, "check_batch", counting)
+    monkeypatch.setattr(view, "check_batch", counting)
+    variants = [{"name": "a", "remove": ["taxi"]}, {"name": "b", "remove": ["bike"]}]
+    r = client.post(
+        SCENARIOS.format(model="harbour"),
+        json={"situations": [situation(0), situation(1)], "variants": variants},
+    )
+    assert r.status_code == 200, r.get_data(as_text=True)
+    assert len(calls) == 1 + len(variants)  # the base once, then each variant once
