@@ -104,6 +104,22 @@ def test_overflow_caused_by_a_variant_names_the_variant(client):
     assert "overflows" in body["errors"][0]["message"]
 
 
+def test_scenario_revenue_overflow_names_the_result_and_its_inputs(client):
+    # A fare of -1e300 and a weight of 1e100: each passes the checks (warn policy), but the
+    # weighted expected revenue overflows to -inf.
+    base = situation(0, ferry__fare=-1e300)
+    base["weight"] = 1e100
+    variant = {"name": "dearer taxi", "changes": [
+        {"alternative": "taxi", "attribute": "fare", "op": "add", "value": 1.0}]}  # fmt: skip
+    r = client.post(
+        SCENARIOS.format(model="harbour"),
+        json={"situations": [base, dict(base, id="u")], "variants": [variant]},
+    )
+    body = refusal(r)
+    assert [e["path"] for e in body["errors"]] == ["$.base.revenue_total"]
+    assert "weights" in body["errors"][0]["message"] and "costs" in body["errors"][0]["message"]
+
+
 @pytest.mark.parametrize("endpoint", [SCORE, SCENARIOS])
 def test_a_value_named_once_is_counted_once(client, endpoint):
     # A fare given as text fails decoding and leaves its cell NaN; check_batch finds that cell

@@ -30,30 +30,49 @@ blueprint = Blueprint("scenarios", __name__)
 SCENARIO_REQUEST = ScenarioRequestSchema()
 
 
-def _finite(value: float | None) -> float | None:
+TOO_LARGE = {
+    "shares": "the weights are too large: their weighted sum overflows",
+    "revenue_total": "the weights or costs are too large: sum_n w_n sum_j P_nj cost_nj overflows",
+    "revenue_change_total": "the weights or costs are too large: the revenue overflows",
+    "surplus_change_total": (
+        "the weights are too large for the surplus change: sum_n w_n dCS_n overflows"
+    ),
+    "surplus_change_mean": "the weights are too large for the surplus change: it overflows",
+}
+"""Why a scenario total is not finite (its inputs passed the checks, so they are too large)."""
+
+
+def _finite(value: float | None, path: str, name: str) -> float | None:
+    """``value`` as a float; a non-finite one is a 422 naming the result field and its
+    inputs."""
     if value is None:
         return None
     if not np.isfinite(value):
         raise unprocessable(
-            "the scenario gives a non-finite result", [FieldError("$", "not finite")]
+            f"the scenario gives a {name} that is not a finite number",
+            [FieldError(f"{path}.{name}", TOO_LARGE[name])],
         )
     return float(value)
 
 
-def _outcome(alternatives: list[str], outcome: Any) -> dict[str, Any]:
+def _outcome(alternatives: list[str], outcome: Any, path: str) -> dict[str, Any]:
+    """One outcome as JSON; ``path`` is where it sits in the response (``$.base``,
+    ``$.variants[2]``), named by a refusal."""
     shares = outcome.shares
     if not np.isfinite(shares).all():
-        raise unprocessable("the scenario gives non-finite shares", [FieldError("$", "not finite")])
+        raise unprocessable(
+            "the scenario gives shares that are not finite numbers",
+            [FieldError(f"{path}.shares", TOO_LARGE["shares"])],
+        )
     out: dict[str, Any] = {
         "name": outcome.name,
         "shares": dict(zip(alternatives, shares.tolist(), strict=True)),
-        "revenue_total": _finite(outcome.revenue_total),
+        "revenue_total": _finite(outcome.revenue_total, path, "revenue_total"),
     }
     if hasattr(outcome, "share_deltas") and outcome.share_deltas is not None:
         out["share_deltas"] = dict(zip(alternatives, outcome.share_deltas.tolist(), strict=True))
-        out["surplus_change_total"] = _finite(outcome.surplus_change_total)
-        out["surplus_change_mean"] = _finite(outcome.surplus_change_mean)
-        out["revenue_change_total"] = _finite(outcome.revenue_change_total)
+        for name in ("surplus_change_total", "surplus_change_mean", "revenue_change_total"):
+            out[name] = _finite(getattr(outcome, name), path, name)
     return out
 
 
@@ -109,8 +128,10 @@ def scenarios(name: str) -> Response:
         "version": loaded.version,
         "routing": {"decision": decision.decision, "generation": generation},
         "alternatives": alternatives,
-        "base": _outcome(alternatives, result.base),
-        "variants": [_outcome(alternatives, v) for v in result.variants],
+        "base": _outcome(alternatives, result.base, "$.base"),
+        "variants": [
+            _outcome(alternatives, v, f"$.variants[{i}]") for i, v in enumerate(result.variants)
+        ],
         "surplus_unavailable": result.surplus_unavailable,
         "warnings": [w.as_dict() for w in decoded.errors(check.warnings)],
     }
