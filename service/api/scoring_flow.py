@@ -22,7 +22,7 @@ from .codecs.arrow import decode_arrow
 from .codecs.columns import column_length, decode_columns
 from .codecs.decoded import Decoded
 from .codecs.ipc_limits import decoded_body_size, dictionary_expansion
-from .codecs.results import Outputs, require_finite
+from .codecs.results import Outputs, clear_negative_zeros, require_finite
 from .codecs.rows import decode_rows
 from .context import settings
 from .problems import (
@@ -219,6 +219,7 @@ def run_score(
             [FieldError(options_path(p.path, form), p.message) for p in exc.problems],
         ) from None
     require_finite(result, decoded.locate)
+    clear_negative_zeros(result)
     return result, check, decoded.errors(check.warnings)
 
 

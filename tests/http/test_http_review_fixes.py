@@ -3,8 +3,11 @@ bound the work a request may cause; results never show a negative zero."""
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
+import numpy as np
+import pyarrow as pa
 import pytest
 from http_models import arrow_bytes, coefficients, columns, long_table, seed_store, situation
 from http_models import spec_dict as harbour_spec
@@ -154,3 +157,37 @@ def test_scenarios_check_the_base_once(client, monkeypatch):
     )
     assert r.status_code == 200, r.get_data(as_text=True)
     assert len(calls) == 1 + len(variants)  # the base once, then each variant once
+
+
+NEGATIVE_ZERO = re.compile(r"-0\.0(?![0-9])")
+
+
+def negative_zeros(values: np.ndarray) -> int:
+    return int(np.count_nonzero((values == 0) & np.signbit(values)))
+
+
+def test_exact_zero_elasticities_are_positive_zero_in_json_and_arrow(client):
+    # bike does not use fare, so every elasticity with respect to bike's fare is exactly 0
+    # (Train 2009, sec. 3.6: E_ik = -beta x_k P_k with beta = 0 for bike; from memory).
+    url = SCORE.format(model="harbour")
+    options = {"elasticities": ["fare"], "aggregate": True}
+    situations = [situation(i) for i in range(3)]
+    for body in ({"situations": situations}, {"columns": columns(situations)}):
+        r = client.post(url, json={**body, "return": options})
+        assert r.status_code == 200, r.get_data(as_text=True)
+        assert not NEGATIVE_ZERO.search(r.get_data(as_text=True))
+        rows = r.get_json().get("situations")
+        if rows:
+            assert rows[0]["elasticities"]["fare"]["ferry"]["bike"] == 0.0
+    table = long_table(situations)
+    r = client.post(
+        url + "?elasticities=fare&aggregate=true",
+        data=arrow_bytes(table),
+        headers={"Content-Type": ARROW},
+    )
+    assert r.status_code == 200, r.get_data(as_text=True)
+    out = pa.ipc.open_stream(r.data).read_all()
+    fare = [c for c in out.column_names if ".fare." in c]
+    assert fare and all(negative_zeros(out[c].to_numpy()) == 0 for c in fare)
+    assert out["elasticity.fare.bike"].to_numpy().tolist() == [0.0] * len(out)
+    assert not NEGATIVE_ZERO.search(out.schema.metadata[b"choicecast.aggregate"].decode())

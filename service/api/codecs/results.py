@@ -78,6 +78,17 @@ def require_finite(result: ScoreResult, locate: Callable[[BatchProblem], str]) -
         raise unprocessable("the inputs give results that are not finite numbers", errors)
 
 
+def clear_negative_zeros(result: ScoreResult) -> None:
+    """Elasticities and marginal effects with ``-0.0`` made ``0.0``, in place (x + 0.0 is
+    +0.0 for x = -0.0 under IEEE 754 round-to-nearest, and x for every other x): an exact
+    zero (an attribute the alternative does not use) reads as 0.0 in JSON and Arrow alike."""
+    arrays = [a for e in result.elasticities.values() for a in (e.elasticity, e.marginal_effect)]
+    if result.aggregate is not None:
+        arrays += list(result.aggregate.elasticities.values())
+    for arr in arrays:
+        np.add(arr, 0.0, out=arr)
+
+
 def _matrix(alternatives: Sequence[str], rows: list, attribute: bool) -> dict[str, Any]:
     if attribute:
         return {
