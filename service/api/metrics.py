@@ -49,7 +49,7 @@ VALIDATION_FAILURES = Counter(
 )
 OUT_OF_RANGE = Counter(
     "choicecast_out_of_range_total",
-    "Situations with an input outside the range seen in estimation, by model and version.",
+    "Input values outside the range seen in estimation (warned or clipped), by model and version.",
     ["model", "version"],
 )
 SHADOW_DIVERGENCE = Histogram(

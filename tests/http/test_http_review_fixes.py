@@ -191,3 +191,19 @@ def test_exact_zero_elasticities_are_positive_zero_in_json_and_arrow(client):
     assert fare and all(negative_zeros(out[c].to_numpy()) == 0 for c in fare)
     assert out["elasticity.fare.bike"].to_numpy().tolist() == [0.0] * len(out)
     assert not NEGATIVE_ZERO.search(out.schema.metadata[b"choicecast.aggregate"].decode())
+
+
+def test_out_of_range_counter_counts_values(client):
+    from prometheus_client import REGISTRY
+
+    labels = {"model": "harbour", "version": "v1"}
+    before = REGISTRY.get_sample_value("choicecast_out_of_range_total", labels) or 0.0
+    # Two values outside their estimation range in one situation (fare 0-20, time 2-120).
+    s = situation(0, ferry__fare=25.0, taxi__time=500.0)
+    r = client.post(SCORE.format(model="harbour"), json={"situations": [s]})
+    assert r.status_code == 200 and r.get_json()["warning_count"] == 2
+    after = REGISTRY.get_sample_value("choicecast_out_of_range_total", labels)
+    assert after - before == 2
+    text = client.get("/metrics").get_data(as_text=True)
+    help_line = next(x for x in text.splitlines() if x.startswith("# HELP choicecast_out_of_r"))
+    assert "values" in help_line and "Situations" not in help_line
