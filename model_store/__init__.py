@@ -17,12 +17,13 @@ from model_store.errors import (
     StoreUnavailable,
     VersionExists,
 )
-from model_store.routing import RoutingState
+from model_store.routing import KEEP_SHADOW, RoutingState
 from model_store.store import LoadedVersion, Store
 from model_store.uri import DEFAULT_STORE, default_store_uri, open_store
 
 __all__ = [
     "DEFAULT_STORE",
+    "KEEP_SHADOW",
     "ArtifactError",
     "LoadedVersion",
     "NotFound",

@@ -8,6 +8,7 @@ pure; :class:`model_store.store.Store` does the reading and the create-if-absent
 
 from __future__ import annotations
 
+import enum
 import json
 import math
 from collections.abc import Mapping
@@ -17,6 +18,15 @@ from typing import Any
 from model_store.errors import RoutingError
 
 ACTIONS = ("route", "promote", "rollback")
+
+
+class Keep(enum.Enum):
+    """Marker for a change that keeps the shadow of the state it is computed from."""
+
+    SHADOW = "keep the current shadow"
+
+
+KEEP_SHADOW = Keep.SHADOW
 
 
 @dataclass(frozen=True)
@@ -107,6 +117,14 @@ def decode(model: str, generation: int, data: bytes) -> RoutingState:
         )
     except (ValueError, KeyError, TypeError, AttributeError) as exc:
         raise RoutingError(f"{where} is unreadable: {exc}") from None
+
+
+def kept_shadow(base: RoutingState, weights: Mapping[str, float]) -> str | None:
+    """The shadow a change that keeps it records: the shadow of ``base``, unless the new
+    weights make that version the only live one (then no shadow, as ``promote`` does)."""
+    if base.shadow is not None and [v for v, w in weights.items() if w > 0] == [base.shadow]:
+        return None
+    return base.shadow
 
 
 def check_change(live: Mapping[str, float], shadow: str | None, reason: str) -> dict[str, float]:

@@ -26,7 +26,7 @@ from model_store.errors import (
     StoreUnavailable,
     VersionExists,
 )
-from model_store.routing import RoutingState
+from model_store.routing import KEEP_SHADOW, Keep, RoutingState
 from service.choice.spec import (
     NAME_PATTERN,
     Coefficients,
@@ -317,7 +317,7 @@ class Store:
         self,
         model: str,
         live: Mapping[str, float],
-        shadow: str | None = None,
+        shadow: str | Keep | None = KEEP_SHADOW,
         *,
         reason: str,
         changed_by: str,
@@ -327,6 +327,9 @@ class Store:
     ) -> RoutingState:
         """Record a new routing state; returns it.
 
+        ``shadow``: a version to score alongside, ``None`` for no shadow, or ``KEEP_SHADOW``
+        (the default) for the shadow of the state the change is computed from, dropped only
+        if the new weights make it the only live version.
         ``expected_generation`` is the generation the change was computed from (default: the
         current one, read now). If another change was recorded since, :class:`RoutingConflict`
         is raised and nothing is written. Every live version and the shadow must load
@@ -335,16 +338,21 @@ class Store:
         check_name("model", model)
         if action not in routing.ACTIONS:
             raise RoutingError(f"action: must be one of {', '.join(routing.ACTIONS)}")
-        weights = routing.check_change(live, shadow, reason)
+        weights = routing.check_change(live, None if isinstance(shadow, Keep) else shadow, reason)
         current = self.routing_generation(model)
         base = current if expected_generation is None else expected_generation
         if base != current:
             raise RoutingConflict(model, base, current)
+        chosen = (
+            routing.kept_shadow(self._read_state(model, base), weights)
+            if isinstance(shadow, Keep)
+            else shadow
+        )
         published = set(self.list_versions(model))
         if not published:
             raise NotFound(f"model {model!r} not found in {self.uri}")
-        for version in [*weights, *([shadow] if shadow is not None else [])]:
-            where = "shadow" if version == shadow and version not in weights else f"live.{version}"
+        for version in [*weights, *([chosen] if chosen is not None else [])]:
+            where = "shadow" if version == chosen and version not in weights else f"live.{version}"
             if version not in published:
                 raise RoutingError(f"{where}: version {version!r} of {model!r} is not published")
             try:
@@ -355,7 +363,7 @@ class Store:
             model=model,
             generation=base + 1,
             live=weights,
-            shadow=shadow,
+            shadow=chosen,
             previous_generation=base,
             action=action,
             changed_by=changed_by,
@@ -378,17 +386,15 @@ class Store:
         reason: str | None = None,
         expected_generation: int | None = None,
     ) -> RoutingState:
-        """Route 100% of live traffic to ``version``; a shadow equal to it is cleared."""
-        current = self.get_routing(model)
-        base = current.generation if expected_generation is None else expected_generation
-        shadow = current.shadow if current.shadow != version else None
+        """Route 100% of live traffic to ``version``, keeping the shadow (cleared if it is
+        ``version``)."""
         return self.change_routing(
             model,
             {version: 1.0},
-            shadow,
+            KEEP_SHADOW,
             reason=reason or f"promote {version} to 100%",
             changed_by=changed_by,
-            expected_generation=base,
+            expected_generation=expected_generation,
             action="promote",
         )
 

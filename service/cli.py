@@ -22,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from model_store import (
+    KEEP_SHADOW,
     ArtifactError,
     NotFound,
     RoutingConflict,
@@ -703,7 +704,22 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("model")
     p.add_argument("--live", nargs="+", required=True, metavar="VERSION=WEIGHT")
-    p.add_argument("--shadow", help="a version scored alongside, never answering")
+    shadow = p.add_mutually_exclusive_group()
+    shadow.add_argument(
+        "--shadow",
+        default=KEEP_SHADOW,
+        metavar="VERSION",
+        help="a version scored alongside, never answering (default: keep the current shadow, "
+        "unless it becomes the only live version)",
+    )
+    shadow.add_argument(
+        "--no-shadow",
+        dest="shadow",
+        action="store_const",
+        const=None,
+        default=KEEP_SHADOW,
+        help="stop shadow scoring",
+    )
     p.add_argument("--reason", required=True, help="why (recorded in the history)")
     p = add(
         "promote", cmd_promote, "route 100%% of traffic to a version", [store, who, guard, machine]

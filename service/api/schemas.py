@@ -269,7 +269,10 @@ class RoutingChangeSchema(Strict):
         required=True,
         metadata={"description": "weights by version (normalised)"},
     )
-    shadow = fields.String(allow_none=True, load_default=None)
+    shadow = fields.String(
+        allow_none=True,
+        metadata={"description": "a version scored alongside; null: none; omitted: kept"},
+    )
     expected_generation = fields.Integer(
         strict=True, metadata={"description": "refuse the change (409) if routing moved on"}
     )

@@ -12,6 +12,8 @@ from typing import Any
 
 from flask import Blueprint, Response, g, jsonify, request
 
+from model_store import KEEP_SHADOW
+
 from .. import auth
 from ..context import registry, tokens
 from ..problems import ApiError, FieldError, bad_request, not_found, unavailable, unprocessable
@@ -87,7 +89,7 @@ def change_routing(name: str) -> Response:
         lambda s: s.change_routing(
             name,
             body["live"],
-            body["shadow"],
+            body.get("shadow", KEEP_SHADOW),
             reason=body["reason"],
             changed_by=_operator(),
             expected_generation=body.get("expected_generation"),

@@ -1,0 +1,60 @@
+"""`route` keeps the shadow unless told otherwise; the HTTP admin endpoint follows the same
+rule."""
+
+from __future__ import annotations
+
+import pytest
+from cli_cases import publish
+
+from model_store import open_store
+from service.api import create_app
+
+
+@pytest.fixture
+def routed(cli, ferry_files):
+    for version in ("v1", "v2", "v3"):
+        assert publish(cli, ferry_files, version).code == 0
+    first = cli("route", "ferry", "--live", "v1=100", "--shadow", "v2", "--reason", "shadow v2")
+    assert first.code == 0, first.err
+    return cli
+
+
+def test_widening_a_canary_keeps_the_shadow(routed):
+    out = routed("route", "ferry", "--live", "v1=95", "v3=5", "--reason", "canary", "--json")
+    assert out.code == 0, out.err
+    assert out.json()["shadow"] == "v2" and out.json()["generation"] == 2
+
+
+def test_no_shadow_clears_it_and_shadow_replaces_it(routed):
+    out = routed("route", "ferry", "--live", "v1=100", "--shadow", "v3", "--reason", "r", "--json")
+    assert out.json()["shadow"] == "v3"
+    out = routed("route", "ferry", "--live", "v1=100", "--no-shadow", "--reason", "r", "--json")
+    assert out.code == 0, out.err
+    assert out.json()["shadow"] is None
+    with pytest.raises(SystemExit) as refused:
+        routed("route", "ferry", "--live", "v1=1", "--shadow", "v2", "--no-shadow", "--reason", "r")
+    assert refused.value.code == 2
+    assert "not allowed with" in routed.capsys.readouterr().err
+
+
+def test_the_http_routing_change_keeps_the_shadow_unless_given(
+    cli, ferry_files, tmp_path, monkeypatch
+):
+    store_dir = tmp_path / "store"
+    if cli.store_args[1] != str(store_dir):
+        pytest.skip("the HTTP check runs once, on the filesystem store")
+    for version in ("v1", "v2", "v3"):
+        assert publish(cli, ferry_files, version).code == 0
+    monkeypatch.setenv("CHOICECAST_ADMIN_TOKENS", "review-admin-token")
+    client = create_app(
+        {"store": str(store_dir), "poll_seconds": 0, "access_log": False}
+    ).test_client()
+    token = {"Authorization": "Bearer review-admin-token"}
+    put = lambda body: client.put("/v1/models/ferry/routing", json=body, headers=token)  # noqa: E731
+    assert put({"live": {"v1": 1}, "shadow": "v2", "reason": "shadow"}).status_code == 200
+    r = put({"live": {"v1": 9, "v3": 1}, "reason": "canary"})
+    assert r.status_code == 200, r.get_json()
+    assert r.get_json()["shadow"] == "v2"
+    r = put({"live": {"v1": 1}, "shadow": None, "reason": "stop shadow"})
+    assert r.status_code == 200 and r.get_json()["shadow"] is None
+    assert open_store(str(store_dir)).get_routing("ferry").shadow is None
