@@ -304,9 +304,15 @@ class Store:
             raise RoutingError(f"routing generation {generation} of {model!r} not found") from None
         return routing.decode(model, generation, data)
 
-    def get_routing(self, model: str) -> RoutingState:
-        """The current routing state (generation 0, empty, when never routed)."""
-        return self._read_state(model, self.routing_generation(model))
+    def get_routing(self, model: str, generation: int | None = None) -> RoutingState:
+        """The current routing state, or the one recorded as ``generation`` (generation 0 is
+        the empty state of a model never routed)."""
+        if generation is None:
+            return self._read_state(model, self.routing_generation(model))
+        check_name("model", model)
+        if not isinstance(generation, int) or generation < 0:
+            raise RoutingError(f"generation: {generation!r} is not a generation number")
+        return self._read_state(model, generation)
 
     def history(self, model: str) -> list[RoutingState]:
         """Every routing change of ``model``, oldest first."""

@@ -370,14 +370,31 @@ def parse_live(items: Sequence[str]) -> dict[str, float]:
     return live
 
 
-def _print_state(state: RoutingState, headline: str, as_json: bool = False) -> None:
+def _state_text(state: RoutingState) -> str:
+    """``v1 90%, v2 10%, shadow v2``: a routing state on one line."""
+    if state.is_empty:
+        return "nothing routed"
+    return f"{_live_text(state)}, " + (f"shadow {state.shadow}" if state.shadow else "no shadow")
+
+
+def _print_change(store: Store, state: RoutingState, headline: str, as_json: bool) -> None:
+    """The new state and the one it replaced (read back: records are immutable), so a change
+    made meanwhile by someone else is never replaced unseen."""
+    replaced = store.get_routing(state.model, state.generation - 1)
     if as_json:
-        emit_json(state.as_dict())
+        emit_json({**state.as_dict(), "replaced": replaced.as_dict()})
         return
     print(f"{headline}: generation {state.generation}")
-    print(f"  live    {_live_text(state)}")
-    print(f"  shadow  {state.shadow or '-'}")
-    print(f"  by {state.changed_by}: {state.reason}")
+    print(
+        f"  replaced generation {replaced.generation} ({_state_text(replaced)}) "
+        f"with generation {state.generation} ({_state_text(state)})"
+    )
+    if replaced.generation:
+        print(
+            f"  generation {replaced.generation} was recorded by {replaced.changed_by} "
+            f"at {replaced.changed_at}: {replaced.reason}"
+        )
+    print(f"  generation {state.generation} by {state.changed_by}: {state.reason}")
 
 
 def cmd_route(args: argparse.Namespace) -> int:
@@ -390,7 +407,7 @@ def cmd_route(args: argparse.Namespace) -> int:
         changed_by=operator(args.by),
         expected_generation=args.expect_generation,
     )
-    _print_state(state, f"routed {state.model}", args.json)
+    _print_change(store, state, f"routed {state.model}", args.json)
     return 0
 
 
@@ -403,7 +420,7 @@ def cmd_promote(args: argparse.Namespace) -> int:
         reason=args.reason,
         expected_generation=args.expect_generation,
     )
-    _print_state(state, f"promoted {state.model} {args.version}", args.json)
+    _print_change(store, state, f"promoted {state.model} {args.version}", args.json)
     return 0
 
 
@@ -416,7 +433,7 @@ def cmd_rollback(args: argparse.Namespace) -> int:
         expected_generation=args.expect_generation,
     )
     headline = f"rolled {state.model} back to the state of generation {state.restored_generation}"
-    _print_state(state, headline, args.json)
+    _print_change(store, state, headline, args.json)
     return 0
 
 
@@ -676,7 +693,8 @@ def build_parser() -> argparse.ArgumentParser:
         "--expect-generation",
         type=int,
         default=None,
-        help="refuse unless the routing is still at this generation (what you reviewed)",
+        help="refuse unless the routing is still at this generation (what you reviewed; "
+        "recommended in scripts)",
     )
     inputs = argparse.ArgumentParser(add_help=False)
     inputs.add_argument("spec", help="SPEC.json: the model specification (+ optional estimation)")

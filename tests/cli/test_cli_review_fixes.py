@@ -1,5 +1,5 @@
-"""`route` keeps the shadow unless told otherwise; the HTTP admin endpoint follows the same
-rule."""
+"""`route`, `promote` and `rollback` keep the shadow unless told otherwise and say which
+generation (and what state) they replaced; the HTTP admin endpoint follows the same rule."""
 
 from __future__ import annotations
 
@@ -35,6 +35,43 @@ def test_no_shadow_clears_it_and_shadow_replaces_it(routed):
         routed("route", "ferry", "--live", "v1=1", "--shadow", "v2", "--no-shadow", "--reason", "r")
     assert refused.value.code == 2
     assert "not allowed with" in routed.capsys.readouterr().err
+
+
+def test_every_change_names_the_generation_and_state_it_replaced(routed):
+    out = routed("route", "ferry", "--live", "v1=90", "v2=10", "--reason", "canary", "--by", "bo")
+    assert out.code == 0, out.err
+    assert (
+        "replaced generation 1 (v1 100%, shadow v2) with generation 2 (v1 90%, v2 10%, shadow v2)"
+        in out.out
+    )
+    out = routed("promote", "ferry", "v2", "--by", "bo")
+    assert (
+        "replaced generation 2 (v1 90%, v2 10%, shadow v2) with generation 3 (v2 100%, no shadow)"
+        in out.out
+    )
+    assert "generation 2 was recorded by bo at" in out.out and ": canary\n" in out.out
+    assert "generation 3 by bo: promote v2 to 100%" in out.out
+    out = routed("rollback", "ferry", "--expect-generation", "3")
+    assert (
+        "replaced generation 3 (v2 100%, no shadow) with generation 4 (v1 90%, v2 10%, shadow v2)"
+        in out.out
+    )
+    out = routed("rollback", "ferry", "--json")
+    replaced = out.json()["replaced"]
+    assert (replaced["generation"], replaced["live"], replaced["shadow"]) == (
+        4,
+        {"v1": 90.0, "v2": 10.0},
+        "v2",
+    )
+    assert out.json()["generation"] == 5
+
+
+def test_the_first_route_replaces_generation_zero(cli, ferry_files):
+    assert publish(cli, ferry_files, "v1").code == 0
+    out = cli("route", "ferry", "--live", "v1=1", "--reason", "first")
+    assert (
+        "replaced generation 0 (nothing routed) with generation 1 (v1 100%, no shadow)" in out.out
+    )
 
 
 def test_the_http_routing_change_keeps_the_shadow_unless_given(

@@ -1,4 +1,4 @@
-"""Routing changes keep the shadow unless told otherwise."""
+"""Routing changes keep the shadow unless told otherwise; any recorded generation reads back."""
 
 from __future__ import annotations
 
@@ -52,3 +52,15 @@ def test_the_shadow_kept_is_that_of_the_expected_generation(ferry: Store):
     first = change(ferry, {"v1": 100}, "v2")
     state = change(ferry, {"v1": 80, "v3": 20}, expected_generation=first.generation)
     assert state.shadow == "v2" and state.previous_generation == first.generation
+
+
+def test_any_recorded_generation_reads_back(ferry: Store):
+    first = change(ferry, {"v1": 100}, "v2")
+    second = change(ferry, {"v1": 50, "v3": 50}, None)
+    assert ferry.get_routing("ferry", 0).is_empty
+    assert ferry.get_routing("ferry", 1) == first
+    assert ferry.get_routing("ferry", 2) == second == ferry.get_routing("ferry")
+    with pytest.raises(RoutingError, match="generation 3"):
+        ferry.get_routing("ferry", 3)
+    with pytest.raises(RoutingError, match="generation"):
+        ferry.get_routing("ferry", -1)
