@@ -29,6 +29,9 @@ class Settings:
     admin_tokens: tuple[str, ...] = ()
     max_body_bytes: int = 256 * 1024 * 1024
     max_situations: int = 200_000
+    max_work: int = 12_000_000
+    """Most work units one scoring request may cause (:func:`scoring_flow.work_units`); about
+    35 bytes of a worker's memory each for Arrow, more for JSON (weighted)."""
     log_level: str = "INFO"
     access_log: bool = True
     shadow: bool = True
@@ -44,6 +47,7 @@ _FIELDS: dict[str, type] = {
     "admin_tokens": tuple,
     "max_body_bytes": int,
     "max_situations": int,
+    "max_work": int,
     "log_level": str,
     "access_log": bool,
     "shadow": bool,

@@ -191,10 +191,59 @@ def options_path(path: str, form: str) -> str:
     return path if path.startswith("$") else f"$.{path}"
 
 
+FORM_WEIGHT = {"arrow": 1, "columns": 2, "rows": 4}
+"""Memory per work unit relative to Arrow (measured: about 34, 55-75 and 190 bytes; the
+JSON forms hold every output value as a Python object)."""
+
+
+def work_units(n: int, model: Any, outputs: Outputs, form: str) -> int:
+    """The work a scoring request causes, in array values:
+    N J^2 (1 + elasticities) (the derivatives d ln P_i / d V_j and, per elasticity, the
+    elasticities and marginal effects) plus N J K with ``std_errors`` (the utility design),
+    times :data:`FORM_WEIGHT` of the request form."""
+    n_j, n_k = len(model.alternatives), len(model.coefficients.names)
+    work = n * n_j * n_j * (1 + len(outputs.elasticities))
+    if outputs.std_errors:
+        work += n * n_j * n_k
+    return work * FORM_WEIGHT[form]
+
+
+def check_work(n: int, model: Any, outputs: Outputs, form: str, limit: int) -> None:
+    """413 naming the options that multiply the work, when it exceeds ``limit``."""
+    work = work_units(n, model, outputs, form)
+    if work <= limit:
+        return
+    where = "query." if form == "arrow" else "$.return."
+    rows = {"rows": "$.situations", "columns": "$.columns", "arrow": "$"}[form]
+    errors = [FieldError(rows, f"{n} situations x {len(model.alternatives)}^2 alternatives")]
+    if outputs.elasticities:
+        errors.append(
+            FieldError(
+                f"{where}elasticities",
+                f"{len(outputs.elasticities)} elasticities multiply the work by "
+                f"{1 + len(outputs.elasticities)}",
+            )
+        )
+    if outputs.std_errors:
+        errors.append(
+            FieldError(
+                f"{where}std_errors",
+                f"adds situations x alternatives x {len(model.coefficients.names)} coefficients",
+            )
+        )
+    raise too_large(
+        f"the request would cause {work:,} units of work, more than the limit of {limit:,} "
+        "(max_work): send fewer situations per request, or ask for fewer elasticities or "
+        "without std_errors",
+        errors,
+    )
+
+
 def run_score(
     model: Any, decoded: Decoded, outputs: Outputs, form: str
 ) -> tuple[ScoreResult, BatchCheck, list[FieldError]]:
-    """Check then score; every refusal is a 422 naming the fields."""
+    """Check then score; every refusal is a 422 naming the fields (413 over ``max_work``)."""
+    check_work(decoded.batch.size, model, outputs, form, settings().max_work)
     check = check_batch(model, decoded.batch)
     if check.problems or decoded.problems:
         raise refusal(decoded, check)

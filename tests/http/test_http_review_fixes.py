@@ -207,3 +207,69 @@ def test_out_of_range_counter_counts_values(client):
     text = client.get("/metrics").get_data(as_text=True)
     help_line = next(x for x in text.splitlines() if x.startswith("# HELP choicecast_out_of_r"))
     assert "values" in help_line and "Situations" not in help_line
+
+
+def test_work_over_the_limit_is_413_naming_the_options(tmp_path):
+    # harbour v3: J = 3 alternatives, K = 8 coefficients.  Ten situations with two
+    # elasticities and std errors: 10 * 9 * 3 + 10 * 3 * 8 = 510 units (x1 Arrow, x4 rows).
+    app = create_app(
+        {
+            "store": seed_store(tmp_path / "s"),
+            "poll_seconds": 0,
+            "max_work": 550,
+            "access_log": False,
+        }
+    )
+    c = app.test_client()
+    url = "/v1/models/harbour/versions/v3/score"
+    situations = [situation(i) for i in range(10)]
+    heavy = {"elasticities": ["fare", "time"], "std_errors": True}
+    body = refusal(c.post(url, json={"situations": situations, "return": heavy}), 413)
+    assert [e["path"] for e in body["errors"]] == [
+        "$.situations",
+        "$.return.elasticities",
+        "$.return.std_errors",
+    ]
+    assert "2,040" in body["detail"] and "max_work" in body["detail"]
+    r = c.post(
+        url + "?elasticities=fare,time&std_errors=true",
+        data=arrow_bytes(long_table(situations)),
+        headers={"Content-Type": ARROW},
+    )
+    assert r.status_code == 200, r.get_data(as_text=True)  # 510 units as Arrow
+    light = c.post(url, json={"situations": situations[:2], "return": heavy})
+    assert light.status_code == 200, light.get_data(as_text=True)  # 2 situations: 408
+    # Three elasticities as Arrow: 10 * 9 * 4 + 240 = 600 units, over 550.
+    arrow = c.post(
+        url + "?elasticities=fare,time,income&std_errors=true",
+        data=arrow_bytes(long_table(situations)),
+        headers={"Content-Type": ARROW},
+    )
+    assert [e["path"] for e in refusal(arrow, 413)["errors"]] == [
+        "$",
+        "query.elasticities",
+        "query.std_errors",
+    ]
+
+
+def test_the_default_work_limit_admits_the_documented_batches():
+    from service.api.codecs.results import Outputs
+    from service.api.config import Settings
+    from service.api.scoring_flow import work_units
+
+    class FourAlternatives:  # the shape of the benchmark and demo models (J = 4, K = 9)
+        alternatives = ("car", "tram", "bicycle", "walk")
+
+        class coefficients:
+            names = tuple(f"b{k}" for k in range(9))
+
+    limit = Settings().max_work
+    model = FourAlternatives()
+    # docs/benchmarks.md: 100,000 situations, probabilities, in every form.
+    for form in ("rows", "columns", "arrow"):
+        assert work_units(100_000, model, Outputs(), form) <= limit
+    # 100,000 situations as Arrow with four elasticities and std errors.
+    full = Outputs(elasticities=("cost", "minutes", "age", "rain_mm"), std_errors=True)
+    assert work_units(100_000, model, full, "arrow") <= limit
+    # ... but not twice as many (it took a worker from 315 to 1180 MiB).
+    assert work_units(200_000, model, full, "arrow") > limit
