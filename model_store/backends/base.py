@@ -26,12 +26,9 @@ class Backend(Protocol):
         """The whole object; raises :class:`KeyMissing`."""
         ...
 
-    def put(self, key: str, data: bytes) -> None:
-        """Write or replace ``key`` atomically (readers see the old or the new bytes)."""
-        ...
-
     def put_new(self, key: str, data: bytes) -> None:
-        """Create ``key`` only if absent, atomically; raises :class:`KeyExists` otherwise."""
+        """Create ``key`` only if absent, atomically; raises :class:`KeyExists` otherwise.
+        The only write: nothing stored is ever replaced."""
         ...
 
     def exists(self, key: str) -> bool: ...

@@ -73,20 +73,6 @@ class FileBackend:
         finally:
             os.close(fd)
 
-    def put(self, key: str, data: bytes) -> None:
-        path = self._path(key)
-        try:
-            temp = self._write_temp(path, data)
-            try:
-                os.replace(temp, path)
-            except BaseException:
-                with contextlib.suppress(OSError):
-                    os.unlink(temp)
-                raise
-            self._sync_dir(path.parent)
-        except OSError as exc:
-            raise self._unavailable(exc) from exc
-
     def put_new(self, key: str, data: bytes) -> None:
         path = self._path(key)
         try:

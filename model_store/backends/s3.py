@@ -107,12 +107,6 @@ class S3Backend:
         except botocore.exceptions.BotoCoreError as exc:
             raise self._fail(exc) from exc
 
-    def put(self, key: str, data: bytes) -> None:
-        try:
-            self.client.put_object(Bucket=self.bucket, Key=self._key(key), Body=data)
-        except (botocore.exceptions.ClientError, botocore.exceptions.BotoCoreError) as exc:
-            raise self._fail(exc) from exc
-
     def put_new(self, key: str, data: bytes) -> None:
         try:
             self.client.put_object(

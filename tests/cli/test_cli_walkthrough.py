@@ -11,6 +11,7 @@ from cli_cases import ALTS, ferry_population, ferry_utilities, logit_shares, pub
 
 from model_store import open_store
 from tests.store.store_cases import FERRY_NAMES, ferry_coefficients
+from tests.support.artifacts import write_behind
 
 
 def test_validate_prints_the_model_and_writes_nothing(cli, ferry_files, tmp_path):
@@ -134,7 +135,7 @@ def test_corrupt_version_is_refused_by_show_and_route(cli, ferry_files):
     store = open_store(cli.store_args[1], *cli.store_args[3:4])
     key = store.stored_key("ferry", "v1", "coefficients.parquet")
     data = store.backend.get(key)
-    store.backend.put(key, data[:-7])  # truncated behind the store's back
+    write_behind(store, key, data[:-7])  # truncated behind the store's back
     result = cli("show", "ferry", "v1")
     assert result.code == 1
     assert "ferry/v1/coefficients.parquet: checksum mismatch" in result.err

@@ -40,10 +40,6 @@ class Gate:
             assert self.resumed.wait(TIMEOUT), "never resumed"
         self.writes += 1
 
-    def put(self, key, data):
-        self._count()
-        self.inner.put(key, data)
-
     def put_new(self, key, data):
         self._count()
         self.inner.put_new(key, data)

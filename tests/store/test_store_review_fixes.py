@@ -6,6 +6,7 @@ import pytest
 from store_cases import publish_ferry
 
 from model_store import KEEP_SHADOW, RoutingError, Store
+from model_store.backends.base import Backend, KeyExists
 
 
 @pytest.fixture
@@ -64,3 +65,13 @@ def test_any_recorded_generation_reads_back(ferry: Store):
         ferry.get_routing("ferry", 3)
     with pytest.raises(RoutingError, match="generation"):
         ferry.get_routing("ferry", -1)
+
+
+def test_no_backend_has_an_overwriting_write(store: Store):
+    # nothing published is ever replaced (DESIGN): create-if-absent is the only write
+    for cls in (Backend, type(store.backend)):
+        assert not hasattr(cls, "put"), cls
+    store.backend.put_new("models/x/probe.json", b"1")
+    with pytest.raises(KeyExists):
+        store.backend.put_new("models/x/probe.json", b"2")
+    assert store.backend.get("models/x/probe.json") == b"1"

@@ -102,10 +102,6 @@ class FailAfter:
             raise KeyboardInterrupt("killed")
         self.left -= 1
 
-    def put(self, key, data):
-        self._spend()
-        self.inner.put(key, data)
-
     def put_new(self, key, data):
         self._spend()
         self.inner.put_new(key, data)

@@ -2,8 +2,8 @@
 
 The good model is invented: islanders choosing between a ``ferry``, a ``plane`` and staying
 home (``stay``, the outside option) for a weekend trip; the numbers are made up.  Hostile
-versions are written key by key through the store's backend (as a broken or malicious
-publisher would), bypassing :meth:`model_store.Store.publish` and its checks.
+versions are written key by key behind the store's back (:func:`write_behind`, as a broken
+or malicious publisher would), bypassing :meth:`model_store.Store.publish` and its checks.
 """
 
 from __future__ import annotations
@@ -26,6 +26,8 @@ from model_store.artifact import (
     manifest_bytes,
     sha256,
 )
+from model_store.backends.filesystem import FileBackend
+from model_store.backends.s3 import S3Backend
 from model_store.routing import RoutingState, encode, record_key
 from service.choice.spec import Coefficients, ModelSpec, spec_from_dict, spec_to_dict
 
@@ -83,6 +85,22 @@ def _prefix(model: str, version: str) -> str:
     return f"models/{model}/versions/{version}/"
 
 
+def write_behind(store: Store, key: str, data: bytes) -> None:
+    """Write or replace ``key`` behind the store's back, as a broken or hostile writer could
+    (the store itself never overwrites): a plain file under the filesystem root, or a plain
+    ``PutObject`` to the S3 server."""
+    backend = store.backend
+    if isinstance(backend, FileBackend):
+        path = backend.root / key
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_bytes(data)
+    elif isinstance(backend, S3Backend):
+        name = f"{backend.prefix}/{key}" if backend.prefix else key
+        backend.client.put_object(Bucket=backend.bucket, Key=name, Body=data)
+    else:
+        raise TypeError(f"write_behind: no direct writer for {type(backend).__name__}")
+
+
 def write_version(
     store: Store,
     version: str,
@@ -96,7 +114,7 @@ def write_version(
     publish) a manifest whose ``files`` lists the sha256 of ``listed`` (default: ``files``)."""
     prefix = _prefix(MODEL, version)
     for name, data in files.items():
-        store.backend.put(prefix + name, data)
+        write_behind(store, prefix + name, data)
     if not manifest:
         return
     digests = {n: sha256(d) for n, d in (files if listed is None else listed).items()}
@@ -109,7 +127,7 @@ def write_version(
         published_by="someone-else",
     )
     body.update(manifest_extra or {})
-    store.backend.put(prefix + MANIFEST, manifest_bytes(body))
+    write_behind(store, prefix + MANIFEST, manifest_bytes(body))
 
 
 def good_coefficients_bytes(shift: float = 0.0) -> bytes:
@@ -166,7 +184,7 @@ def force_routing(
         changed_at="2026-01-01T00:00:00Z",
         reason=reason,
     )
-    store.backend.put(record_key(model, generation), encode(state))
+    write_behind(store, record_key(model, generation), encode(state))
     return generation
 
 
@@ -190,7 +208,8 @@ def plant_version(
     body = json.loads(store.backend.get(src + MANIFEST))
     body.pop("stored_as", None)  # the copy keeps its files at the plain names
     for name in body["files"]:
-        store.backend.put(
+        write_behind(
+            store,
             dst + name,
             data
             if name == COEFFICIENTS
@@ -198,7 +217,7 @@ def plant_version(
         )
     if manifest:
         body["version"] = target
-        store.backend.put(dst + MANIFEST, manifest_bytes(body))
+        write_behind(store, dst + MANIFEST, manifest_bytes(body))
 
 
 def original_coefficients(store: Store, model: str, version: str) -> bytes:
