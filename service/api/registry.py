@@ -24,6 +24,10 @@ from . import metrics
 log = logging.getLogger("choicecast.registry")
 
 
+FALLBACK_GENERATIONS = 32
+"""How many older routing generations a new worker tries when the newest does not load."""
+
+
 class UnknownModel(LookupError):
     pass
 
@@ -221,7 +225,13 @@ class Registry:
                 if failed & set(new.live):
                     if name in old.routes:
                         routes[name] = old.routes[name]
-                    continue
+                        continue
+                    # Nothing served here yet (a new worker): the newest older generation
+                    # whose live versions all load, as an older worker still serves it.
+                    fallback = self._last_loading(name, new.generation, problems)
+                    if fallback is None:
+                        continue
+                    new, failed = fallback
                 if new.shadow in failed:
                     new = ModelRouting(new.generation, new.live, None)
                 routes[name] = new
@@ -236,6 +246,28 @@ class Registry:
             )
             metrics.DEGRADED.set(1 if problems else 0)
             return self.snapshot
+
+    def _last_loading(
+        self, name: str, newest: int, problems: list[str]
+    ) -> tuple[ModelRouting, set[str]] | None:
+        """The newest routing record older than ``newest`` whose live versions all load (at
+        most :data:`FALLBACK_GENERATIONS` back), with the versions that failed to load."""
+        for generation in range(newest - 1, max(0, newest - 1 - FALLBACK_GENERATIONS), -1):
+            try:
+                routing = _routing_of(self.store.get_routing(name, generation))
+            except Exception as exc:
+                problems.append(f"{name}: routing generation {generation} cannot be read: {exc}")
+                return None
+            if not routing.live:
+                continue
+            failed = self._load_all(name, routing, [])
+            if not failed & set(routing.live):
+                problems.append(
+                    f"{name}: routing generation {newest} names a version that does not load; "
+                    f"serving generation {generation}"
+                )
+                return routing, failed
+        return None
 
     def _load_all(self, name: str, routing: ModelRouting, problems: list[str]) -> set[str]:
         failed: set[str] = set()

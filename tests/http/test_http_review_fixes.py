@@ -273,3 +273,31 @@ def test_the_default_work_limit_admits_the_documented_batches():
     assert work_units(100_000, model, full, "arrow") <= limit
     # ... but not twice as many (it took a worker from 315 to 1180 MiB).
     assert work_units(200_000, model, full, "arrow") > limit
+
+
+def test_a_new_worker_serves_the_newest_generation_that_loads(tmp_path):
+    path = seed_store(tmp_path / "store")
+    store = open_store(path)
+    store.change_routing("harbour", {"v1": 0.5, "v2": 0.5}, reason="split", changed_by="tests")
+    # v2 corrupted after the (validated) change, before this worker starts.
+    coefficients = Path(path) / store.stored_key("harbour", "v2", "coefficients.parquet")
+    coefficients.write_bytes(coefficients.read_bytes()[:-7] + b"garbage")
+    app = create_app({"store": path, "poll_seconds": 0, "access_log": False})
+    c = app.test_client()
+    ready = c.get("/readyz")
+    assert ready.status_code == 503
+    reasons = ready.get_json()["reasons"]
+    assert any("'v2'" in r for r in reasons) and any("serving generation 1" in r for r in reasons)
+    for i in range(20):
+        r = c.post(
+            "/v1/models/harbour/score",
+            json={"routing_key": f"k{i}", "situations": [situation(0)]},
+        )
+        assert r.status_code == 200, r.get_data(as_text=True)
+        assert r.get_json()["version"] == "v1" and r.headers["X-Routing-Generation"] == "1"
+    # Polling again keeps serving generation 1 and keeps reporting the broken version.
+    app.extensions["choicecast.registry"].refresh()
+    assert c.get("/readyz").status_code == 503
+    assert (
+        c.post("/v1/models/harbour/score", json={"situations": [situation(0)]}).status_code == 200
+    )
