@@ -301,3 +301,22 @@ def test_a_new_worker_serves_the_newest_generation_that_loads(tmp_path):
     assert (
         c.post("/v1/models/harbour/score", json={"situations": [situation(0)]}).status_code == 200
     )
+
+
+def test_scenario_work_over_the_limit_is_413_naming_the_variants(tmp_path):
+    # harbour: J = 3.  Ten situations and four variants: 10 * 3 * (1 + 4) = 150 units.
+    config = {"store": seed_store(tmp_path / "s"), "poll_seconds": 0, "max_work": 120}
+    app = create_app({**config, "access_log": False})
+    c = app.test_client()
+    situations = [situation(i) for i in range(10)]
+    change = {"alternative": "taxi", "attribute": "fare", "op": "add"}
+    variants = [
+        {"name": f"fare +{k}", "changes": [{**change, "value": float(k)}]} for k in range(4)
+    ]
+    url = SCENARIOS.format(model="harbour")
+    body = refusal(c.post(url, json={"situations": situations, "variants": variants}), 413)
+    assert [e["path"] for e in body["errors"]] == ["$", "$.variants"]
+    assert "150" in body["detail"] and "max_work" in body["detail"]
+    # Three variants: 10 * 3 * 4 = 120 units, at the limit.
+    r = c.post(url, json={"situations": situations, "variants": variants[:3]})
+    assert r.status_code == 200, r.get_data(as_text=True)
