@@ -14,11 +14,13 @@ threads with http.client, each sending requests back to back for a fixed time.
 from __future__ import annotations
 
 import argparse
+import atexit
 import http.client
 import json
 import os
 import platform
 import re
+import shutil
 import signal
 import socket
 import statistics
@@ -314,6 +316,7 @@ def main() -> None:
 
     load_before = os.getloadavg()[0]
     tmp = Path(tempfile.mkdtemp(prefix="choicecast-bench-"))
+    atexit.register(shutil.rmtree, tmp, ignore_errors=True)
     store = demo_store(tmp / "current")
     baseline = export_commit(args.baseline, tmp / "baseline") if args.baseline else None
 
