@@ -8,6 +8,7 @@ from cli_cases import publish
 
 from model_store import open_store
 from service.api import create_app
+from tests.store.store_cases import publish_ferry
 
 
 @pytest.fixture
@@ -74,24 +75,25 @@ def test_the_first_route_replaces_generation_zero(cli, ferry_files):
     )
 
 
-def test_the_http_routing_change_keeps_the_shadow_unless_given(
-    cli, ferry_files, tmp_path, monkeypatch
-):
-    store_dir = tmp_path / "store"
-    if cli.store_args[1] != str(store_dir):
-        pytest.skip("the HTTP check runs once, on the filesystem store")
+def test_the_http_routing_change_keeps_the_shadow_unless_given(tmp_path, monkeypatch):
+    store = open_store(str(tmp_path / "store"))
     for version in ("v1", "v2", "v3"):
-        assert publish(cli, ferry_files, version).code == 0
+        publish_ferry(store, version, shift=0.1 * int(version[1:]))
     monkeypatch.setenv("CHOICECAST_ADMIN_TOKENS", "review-admin-token")
-    client = create_app(
-        {"store": str(store_dir), "poll_seconds": 0, "access_log": False}
-    ).test_client()
-    token = {"Authorization": "Bearer review-admin-token"}
-    put = lambda body: client.put("/v1/models/ferry/routing", json=body, headers=token)  # noqa: E731
+    app = create_app({"store": store.uri, "poll_seconds": 0, "access_log": False})
+    client = app.test_client()
+
+    def put(body):
+        return client.put(
+            "/v1/models/ferry/routing",
+            json=body,
+            headers={"Authorization": "Bearer review-admin-token"},
+        )
+
     assert put({"live": {"v1": 1}, "shadow": "v2", "reason": "shadow"}).status_code == 200
     r = put({"live": {"v1": 9, "v3": 1}, "reason": "canary"})
     assert r.status_code == 200, r.get_json()
     assert r.get_json()["shadow"] == "v2"
     r = put({"live": {"v1": 1}, "shadow": None, "reason": "stop shadow"})
     assert r.status_code == 200 and r.get_json()["shadow"] is None
-    assert open_store(str(store_dir)).get_routing("ferry").shadow is None
+    assert store.get_routing("ferry").shadow is None
