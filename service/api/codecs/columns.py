@@ -32,11 +32,10 @@ def column_length(columns: dict[str, Any]) -> int:
 
 def decode_columns(model: Any, columns: dict[str, Any]) -> Decoded:
     n = column_length(columns)
-    j_of = {a: i for i, a in enumerate(model.alternatives)}
-    a_of = {a: i for i, a in enumerate(model.attributes)}
-    c_of = {c: i for i, c in enumerate(model.context)}
-    x = np.where(model.required, np.nan, 0.0)[None].repeat(n, axis=0)
-    z = np.where(model.required_context_mask, np.nan, 0.0)[None].repeat(n, axis=0)
+    j_of, a_of, c_of = model.positions
+    unset_x, unset_z = model.unset_values
+    x = unset_x[None].repeat(n, axis=0)
+    z = unset_z[None].repeat(n, axis=0)
     available = np.ones((n, len(model.alternatives)), dtype=bool)
     weights = np.ones(n)
     errors: list[FieldError] = []
