@@ -114,6 +114,11 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
     if n == 0:
         bp = BatchProblem(-1, ("situations",), "the batch has no situations")
         return BatchCheck((bp,), (), batch, 1, 0)
+    # A batch small enough to judge at once is accepted in a few comparisons when nothing
+    # is to be reported; otherwise the checks below find and name each finding.
+    values = n * (len(model.attribute_checks) + len(model.context_checks))
+    if values <= CHUNK_VALUES and _nothing_to_report(model, batch):
+        return BatchCheck((), (), batch, 0, 0)
     problems, warnings = _Collector(max_reported), _Collector(max_reported)
     avail, w = batch.available, batch.weights
     problems.add(~avail.any(axis=1), ("available",), "no alternative is available")
@@ -178,6 +183,31 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
         problem_count=problems.count,
         warning_count=warnings.count,
     )
+
+
+def _nothing_to_report(model: CompiledModel, batch: Batch) -> bool:
+    """Whether a batch passes every check of :func:`check_batch`, judged in a few whole-batch
+    comparisons: each used value of an available alternative and each used context value
+    inside its :attr:`ValueChecks.accepted` bounds, an alternative available in every
+    situation, weights finite and >= 0 with one > 0 (then their sum is positive).  False
+    means there is something to report, and the full check finds and names it."""
+    avail, w = batch.available, batch.weights
+    if not (avail.any(axis=1).all() and ((w >= 0) & (w <= _LARGEST)).all() and (w > 0).any()):
+        return False
+    cells, variables = model.attribute_checks, model.context_checks
+    lo, hi = cells.accepted
+    values = batch.attributes[:, cells.alternative, cells.index]
+    inside = values >= lo
+    inside &= values <= hi
+    inside |= ~avail[:, cells.alternative]
+    if not inside.all():
+        return False
+    lo, hi = variables.accepted
+    values = batch.context[:, variables.index]
+    return bool(((values >= lo) & (values <= hi)).all())
+
+
+_LARGEST = float(np.finfo(np.float64).max)
 
 
 def _clipped(batch: Batch, clips: list[tuple[ValueChecks, np.ndarray, bool]]) -> Batch:

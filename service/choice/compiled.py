@@ -80,6 +80,18 @@ class ValueChecks:
     def __len__(self) -> int:
         return len(self.index)
 
+    @cached_property
+    def accepted(self) -> tuple[np.ndarray, np.ndarray]:
+        """(R,) closed bounds [lo, hi] inside which a value passes every check at once: above
+        the domain bound (the next float up from it), inside the estimation range, and
+        finite (lo >= -max float, hi <= max float; NaN fails every comparison)."""
+        largest = np.finfo(np.float64).max
+        lo = np.maximum(np.maximum(self.low, np.nextafter(self.domain, np.inf)), -largest)
+        hi = np.minimum(self.high, largest)
+        lo.setflags(write=False)
+        hi.setflags(write=False)
+        return lo, hi
+
     @property
     def bounded(self) -> np.ndarray:
         """(R,) bool: values with a domain or range bound (more than a finiteness check)."""

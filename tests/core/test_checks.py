@@ -251,3 +251,95 @@ def test_utilities_that_overflow_are_refused_naming_the_situation(family):
     with pytest.raises(ScoringError) as err:
         score(model, batch)  # no NaN, no RuntimeWarning (the suite makes them errors)
     assert [p.path for p in err.value.problems] == ["situations[3]"]
+
+
+TRICKY = [np.nan, np.inf, -np.inf, -3.0, -1.0, -0.5, 0.0, 5e-324, 0.5, 1.0, 30.0, 30.5, 180.0,
+          180.1, 1e308, -1e308]  # fmt: skip
+"""Values on and beside every bound of the commute model (domain 0 and -1, ranges [0, 30]
+and [1, 180]), non-finite ones and the largest floats."""
+
+
+@pytest.mark.parametrize("policy", ["warn", "reject", "clip"])
+def test_a_batch_accepted_at_once_is_one_the_full_check_finds_nothing_in(policy, monkeypatch):
+    """check_batch accepts a small batch in a few whole-batch comparisons when nothing is to
+    be reported; with that shortcut disabled (CHUNK_VALUES = 0) the full check must agree,
+    finding for finding, on batches built from values at and beside every bound."""
+    import hypothesis.strategies as st
+    from hypothesis import given, settings
+
+    import service.choice.checks as checks
+
+    spec = dict(commute_spec(), range_policy=policy)
+    spec["context"] = [{"name": "income", "low": 10, "high": 150}]
+    model = model_from(spec, commute_model().coefficients.as_mapping())
+    j, a = len(model.alternatives), len(model.attributes)
+    inside = st.floats(10.0, 30.0)  # inside every range of the model
+    accepted = []
+
+    @settings(max_examples=300, deadline=None)
+    @given(n=st.integers(1, 3), data=st.data())
+    def agree(n, data):
+        # Plausible situations, then up to three values replaced by tricky ones.
+        x = np.array(data.draw(st.lists(inside, min_size=n * j * a, max_size=n * j * a)))
+        z = np.array(data.draw(st.lists(inside, min_size=n, max_size=n)))
+        avail = np.array(data.draw(st.lists(st.booleans(), min_size=n * j, max_size=n * j)))
+        w = np.ones(n)
+        for _ in range(data.draw(st.integers(0, 3))):
+            target = data.draw(st.sampled_from(["x", "z", "w"]))
+            arr = {"x": x, "z": z, "w": w}[target]
+            arr[data.draw(st.integers(0, len(arr) - 1))] = data.draw(st.sampled_from(TRICKY))
+        batch = Batch(attributes=x.reshape(n, j, a), context=z.reshape(n, 1),
+                      available=avail.reshape(n, j), weights=w)  # fmt: skip
+        with np.errstate(over="ignore"):
+            quick = check_batch(model, batch)
+            with monkeypatch.context() as m:
+                m.setattr(checks, "CHUNK_VALUES", 0)
+                full = check_batch(model, batch)
+        assert quick.problems == full.problems and quick.warnings == full.warnings
+        assert (quick.problem_count, quick.warning_count) == (
+            full.problem_count,
+            full.warning_count,
+        )
+        np.testing.assert_array_equal(quick.batch.attributes, full.batch.attributes)
+        np.testing.assert_array_equal(quick.batch.context, full.batch.context)
+        if not (full.problem_count or full.warning_count):
+            assert checks._nothing_to_report(model, batch)
+            accepted.append(n)
+
+    agree()
+    assert accepted  # the shortcut was taken, not only the full check
+
+
+@pytest.mark.parametrize("policy", ["warn", "reject", "clip"])
+def test_every_value_at_or_beside_a_bound_is_judged_alike_at_once_and_in_full(policy, monkeypatch):
+    """One situation, one value at a time set to each tricky value (every used cell, the
+    context variable and the weight, with its alternative available or not): the shortcut
+    of check_batch accepts exactly the situations in which the full check finds nothing."""
+    import service.choice.checks as checks
+
+    spec = dict(commute_spec(), range_policy=policy)
+    spec["context"] = [{"name": "income", "low": 10, "high": 150}]
+    model = model_from(spec, commute_model().coefficients.as_mapping())
+    base = commute_batch(model, 1, seed=3)
+    base.attributes[:] = 20.0  # inside every range
+    base.context[:] = 20.0
+    targets = [("x", (0, j, a)) for j, a in zip(*np.nonzero(model.required), strict=True)]
+    targets += [("z", (0, 0)), ("w", (0,))]
+    accepted = refused = 0
+    for (kind, where), value, available in (
+        (t, v, av) for t in targets for v in TRICKY for av in (True, False)
+    ):
+        x, z, w = base.attributes.copy(), base.context.copy(), base.weights.copy()
+        avail = np.ones_like(base.available)
+        {"x": x, "z": z, "w": w}[kind][where] = value
+        if kind == "x":
+            avail[0, where[1]] = available
+        batch = Batch(attributes=x, context=z, available=avail, weights=w)
+        with monkeypatch.context() as m:
+            m.setattr(checks, "CHUNK_VALUES", 0)
+            full = check_batch(model, batch)
+        clean = not (full.problem_count or full.warning_count)
+        assert checks._nothing_to_report(model, batch) == clean, (kind, where, value, available)
+        accepted += clean
+        refused += not clean
+    assert accepted and refused
