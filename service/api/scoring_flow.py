@@ -56,9 +56,12 @@ class ParsedRequest:
     routing_key: str | None = None
 
 
+_ENCODER = json.JSONEncoder(allow_nan=False, separators=(",", ":"))
+
+
 def dumps(body: Any) -> str:
     """JSON text; refuses NaN/Infinity (they are checked away before encoding)."""
-    return json.dumps(body, allow_nan=False, separators=(",", ":"))
+    return _ENCODER.encode(body)
 
 
 def read_json() -> Any:

@@ -65,21 +65,21 @@ class Batch:
             problems.append(BatchProblem(i, tuple(path), message))
 
         for i, rec in enumerate(situations):
-            if not isinstance(rec, Mapping):
+            if not _is_mapping(rec):
                 bad(i, "must be an object")
                 continue
             for key in rec:
                 if key not in RECORD_KEYS:
                     bad(i, "unknown field", str(key))
             attrs = rec.get("attributes", {})
-            if not isinstance(attrs, Mapping):
+            if not _is_mapping(attrs):
                 bad(i, "must be an object keyed by alternative", "attributes")
                 attrs = {}
             for alt, values in attrs.items():
                 if alt not in j_of:
                     bad(i, "not an alternative of the model", "attributes", str(alt))
                     continue
-                if not isinstance(values, Mapping):
+                if not _is_mapping(values):
                     bad(i, "must be an object keyed by attribute", "attributes", alt)
                     continue
                 for name, value in values.items():
@@ -90,7 +90,7 @@ class Batch:
                     else:
                         x[i, j_of[alt], a_of[name]] = v
             ctx = rec.get("context", {})
-            if not isinstance(ctx, Mapping):
+            if not _is_mapping(ctx):
                 bad(i, "must be an object keyed by context variable", "context")
                 ctx = {}
             for name, value in ctx.items():
@@ -101,7 +101,7 @@ class Batch:
                 else:
                     z[i, c_of[name]] = v
             avail = rec.get("available", {})
-            if not isinstance(avail, Mapping):
+            if not _is_mapping(avail):
                 bad(i, "must be an object keyed by alternative", "available")
                 avail = {}
             for alt, flag in avail.items():
@@ -119,8 +119,15 @@ class Batch:
         return cls(attributes=x, context=z, available=available, weights=weights), tuple(problems)
 
 
+def _is_mapping(value: Any) -> bool:
+    """A mapping (parsed JSON gives dicts: the exact-type test spares the abstract check)."""
+    return type(value) is dict or isinstance(value, Mapping)
+
+
 def _number(value: Any) -> float | None:
     """A JSON number as float (non-finite allowed: check_batch reports it), else None."""
+    if type(value) is float:
+        return value
     if isinstance(value, bool) or not isinstance(value, int | float):
         return None
     try:

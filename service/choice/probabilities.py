@@ -69,8 +69,8 @@ def choice_probabilities(model: CompiledModel, v: np.ndarray, available: np.ndar
     """
     np.copyto(v, -np.inf, where=~available)
     top = v.max(axis=0)
-    bad = np.flatnonzero(~np.isfinite(top))
-    if bad.size:
+    if not np.isfinite(top).all():
+        bad = np.flatnonzero(~np.isfinite(top))
         listed = [_not_finite(model, v, available, int(n)) for n in bad[:MAX_LISTED]]
         raise UtilityNotFinite(listed, int(bad.size))
     return _nested(model, v, available) if model.nested else _multinomial(v, available, top)
@@ -92,18 +92,23 @@ def _multinomial(
 ) -> ChoiceState:
     """In place: ``v`` becomes P; ``top`` is the maximum of ``v`` over alternatives when it
     is known and finite in every situation (else it is computed, -inf shifted by 0)."""
-    if top is None:
-        m = v.max(axis=0)
-        shift = np.where(np.isfinite(m), m, 0.0)
-    else:
-        shift = top
+    if top is not None:
+        return _shifted_softmax(v, available, top)
+    m = v.max(axis=0)
+    with np.errstate(divide="ignore", invalid="ignore"):  # a situation with all -inf
+        return _shifted_softmax(v, available, np.where(np.isfinite(m), m, 0.0))
+
+
+def _shifted_softmax(v: np.ndarray, available: np.ndarray, shift: np.ndarray) -> ChoiceState:
+    """P = exp(V - shift) / sum exp(V - shift), logsum = ln sum exp(V - shift) + shift (in
+    place on ``v``).  With shift the finite maximum, the largest term is exp(0) = 1, so the
+    sum is >= 1: nothing overflows or divides by zero (log-sum-exp; common practice)."""
     p = v
     p -= shift
     np.exp(p, out=p)
     s = p.sum(axis=0)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        p /= s
-        logsum = np.log(s)
+    p /= s
+    logsum = np.log(s)
     logsum += shift
     return ChoiceState(probabilities=p, logsum=logsum, available=available)
 

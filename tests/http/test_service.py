@@ -157,6 +157,25 @@ def test_request_ids_are_honoured_or_generated(client):
     assert r.get_json()["request_id"] == "r-9"
 
 
+def test_generated_request_ids_are_unique_hex_and_drawn_anew_in_a_forked_worker():
+    import os
+    import re
+
+    from service.api.access_log import new_request_id
+
+    ids = [new_request_id() for _ in range(10_000)]
+    assert len(set(ids)) == len(ids) and all(re.fullmatch(r"[0-9a-f]{32}", i) for i in ids)
+    read, write = os.pipe()
+    pid = os.fork()
+    if pid == 0:  # a gunicorn worker is such a child: its ids must not repeat the parent's
+        os.write(write, new_request_id().encode())
+        os._exit(0)
+    os.waitpid(pid, 0)
+    child = os.read(read, 64).decode()
+    os.close(read), os.close(write)
+    assert re.fullmatch(r"[0-9a-f]{32}", child) and child[:16] != ids[0][:16]
+
+
 def test_access_log_is_one_json_line_per_request(store_uri, capsys):
     app = create_app({"store": store_uri, "poll_seconds": 0})
     app.test_client().post(
