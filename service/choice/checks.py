@@ -192,19 +192,23 @@ def _nothing_to_report(model: CompiledModel, batch: Batch) -> bool:
     situation, weights finite and >= 0 with one > 0 (then their sum is positive).  False
     means there is something to report, and the full check finds and names it."""
     avail, w = batch.available, batch.weights
-    if not (avail.any(axis=1).all() and ((w >= 0) & (w <= _LARGEST)).all() and (w > 0).any()):
+    lightest, heaviest = w.min(), w.max()  # NaN if any weight is NaN (then both tests fail)
+    if not (lightest >= 0 and 0 < heaviest <= _LARGEST and avail.any(axis=1).all()):
         return False
     cells, variables = model.attribute_checks, model.context_checks
     lo, hi = cells.accepted
     values = batch.attributes[:, cells.alternative, cells.index]
     inside = values >= lo
     inside &= values <= hi
-    inside |= ~avail[:, cells.alternative]
-    if not inside.all():
+    if not (inside >= avail[:, cells.alternative]).all():  # inside wherever available
         return False
+    if not len(variables):
+        return True
     lo, hi = variables.accepted
     values = batch.context[:, variables.index]
-    return bool(((values >= lo) & (values <= hi)).all())
+    inside = values >= lo
+    inside &= values <= hi
+    return bool(inside.all())
 
 
 _LARGEST = float(np.finfo(np.float64).max)
