@@ -28,7 +28,8 @@ access = logging.getLogger("choicecast.access")
 class RequestIds:
     """New request ids: 32 hex digits, a 64-bit random prefix drawn once per process (again
     in a forked child) and a 64-bit counter, so ids never repeat within a process and meet
-    another process's only by chance (1 in 2^64), without a random draw per request."""
+    another process's only by chance (1 in 2^64), without a random draw per request.  Also
+    keeps the process id for the access lines (read once per process, not per request)."""
 
     def __init__(self) -> None:
         self._reset()
@@ -37,12 +38,15 @@ class RequestIds:
     def _reset(self) -> None:
         self._prefix = os.urandom(8).hex()
         self._count = itertools.count(1)
+        self.pid = os.getpid()
 
     def new(self) -> str:
         return f"{self._prefix}{next(self._count):016x}"
 
 
-new_request_id = RequestIds().new
+_request_ids = RequestIds()
+new_request_id = _request_ids.new
+_LINE = json.JSONEncoder(separators=(",", ":"), default=str)
 
 
 class JsonFormatter(logging.Formatter):
@@ -118,10 +122,10 @@ def install(app: Flask, log_requests: bool) -> None:
         ):
             # A refusal after routing still says which version judged the input.
             response.headers["X-Model-Version"] = version
-        metrics.REQUESTS.labels(model, version, route, str(status)).inc()
-        metrics.LATENCY.labels(route).observe(elapsed)
+        metrics.child(metrics.REQUESTS, model, version, route, str(status)).inc()
+        metrics.child(metrics.LATENCY, route).observe(elapsed)
         if status in (400, 413, 415, 422):
-            metrics.VALIDATION_FAILURES.labels(model, str(status)).inc()
+            metrics.child(metrics.VALIDATION_FAILURES, model, str(status)).inc()
         if log_requests:
             entry = {
                 "ts": round(time.time(), 3),
@@ -135,7 +139,7 @@ def install(app: Flask, log_requests: bool) -> None:
                 "bytes_in": req.content_length or 0,
                 "bytes_out": response.content_length or 0,
                 "remote": req.remote_addr,
-                "pid": os.getpid(),
+                "pid": _request_ids.pid,
             }
             for key in ("model", "version", "decision", "generation", "situations", "problem"):
                 value = ctx.get(key)
@@ -152,5 +156,5 @@ def write_access_line(entry: dict) -> None:
     (lines of concurrent threads never interleave), flushed as the log handler would be."""
     if access.isEnabledFor(logging.INFO):
         out = sys.stdout
-        out.write(json.dumps(entry, separators=(",", ":"), default=str) + "\n")
+        out.write(_LINE.encode(entry) + "\n")
         out.flush()

@@ -9,6 +9,7 @@ Without that variable (tests with the Flask client) the ordinary in-process regi
 from __future__ import annotations
 
 import os
+from typing import Any
 
 from prometheus_client import (
     CONTENT_TYPE_LATEST,
@@ -80,6 +81,20 @@ DEGRADED = Gauge(
     "1 when the replica serves a last good state (store unreachable or a version not loaded).",
     multiprocess_mode="max",
 )
+
+
+_children: dict[tuple[Any, tuple[str, ...]], Any] = {}
+
+
+def child(metric: Any, *labels: str) -> Any:
+    """``metric.labels(*labels)``, kept for the next request with the same labels.  Label
+    values are bounded (known models, found versions, routes, statuses), so the cache is
+    too; it is per process, built after gunicorn forks."""
+    key = (metric, labels)
+    found = _children.get(key)
+    if found is None:
+        found = _children[key] = metric.labels(*labels)
+    return found
 
 
 def render() -> tuple[bytes, str]:

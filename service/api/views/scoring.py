@@ -114,10 +114,10 @@ def _score(name: str, pinned: str | None) -> Response:
     if generation is not None:
         response.headers["X-Routing-Generation"] = str(generation)
 
-    metrics.ROUTING.labels(name, loaded.version, decision.decision).inc()
-    metrics.SITUATIONS.labels(name, loaded.version).inc(decoded.batch.size)
+    metrics.child(metrics.ROUTING, name, loaded.version, decision.decision).inc()
+    metrics.child(metrics.SITUATIONS, name, loaded.version).inc(decoded.batch.size)
     if check.warning_count:
-        metrics.OUT_OF_RANGE.labels(name, loaded.version).inc(check.warning_count)
+        metrics.child(metrics.OUT_OF_RANGE, name, loaded.version).inc(check.warning_count)
     if shadow is not None and result.probabilities is not None:
         live_p = result.probabilities
         live_alts = tuple(model.alternatives)
