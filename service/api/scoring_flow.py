@@ -3,10 +3,11 @@ decode it against a model, check and score it, and score the shadow version afte
 
 from __future__ import annotations
 
+import functools
 import json
 import logging
 import struct
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -22,7 +23,7 @@ from .codecs.arrow import decode_arrow
 from .codecs.columns import column_length, decode_columns
 from .codecs.decoded import Decoded
 from .codecs.ipc_limits import decoded_body_size, dictionary_expansion
-from .codecs.results import Outputs, clear_negative_zeros, require_finite
+from .codecs.results import Outputs, clear_negative_zeros, outputs_from, require_finite
 from .codecs.rows import decode_rows
 from .context import settings
 from .problems import (
@@ -42,7 +43,7 @@ log = logging.getLogger("choicecast.scoring")
 JSON = "application/json"
 # Schema instances are reused: building one deep-copies its fields (about 1 ms each).
 SCORE_REQUEST = ScoreRequestSchema()
-DEFAULT_OUTPUTS = OutputsSchema().load({})
+DEFAULT_OUTPUTS = outputs_from(OutputsSchema().load({}))
 ARROW_QUERY = ArrowQuerySchema()
 
 
@@ -52,7 +53,7 @@ class ParsedRequest:
     """``rows``, ``columns`` or ``arrow``."""
     payload: Any
     """The situations list, the columns mapping or the Arrow table."""
-    outputs: dict[str, Any] = field(default_factory=dict)
+    outputs: Outputs = DEFAULT_OUTPUTS
     routing_key: str | None = None
 
 
@@ -114,7 +115,7 @@ def parse_score_request() -> ParsedRequest:
     data = read_json()
     check_size(situation_count(data), settings().max_situations)
     loaded = SCORE_REQUEST.load(data) if isinstance(data, dict) else _not_object()
-    outputs = loaded.get("outputs") or DEFAULT_OUTPUTS
+    outputs = outputs_from(loaded["outputs"]) if loaded.get("outputs") else DEFAULT_OUTPUTS
     if "situations" in loaded:
         return ParsedRequest("rows", loaded["situations"], outputs, loaded.get("routing_key"))
     check_size(column_length(loaded["columns"]), settings().max_situations)
@@ -151,9 +152,9 @@ def _parse_arrow() -> ParsedRequest:
             "(max_body_bytes; compressed buffers and dictionary columns count decoded)",
             [FieldError("$", "decodes to too many bytes")],
         )
-    outputs = {k: v for k, v in query.items() if k != "routing_key"}
-    outputs["elasticities"] = [e.strip() for e in query["elasticities"].split(",") if e.strip()]
-    return ParsedRequest("arrow", table, outputs, query.get("routing_key"))
+    options = {k: v for k, v in query.items() if k != "routing_key"}
+    options["elasticities"] = [e.strip() for e in query["elasticities"].split(",") if e.strip()]
+    return ParsedRequest("arrow", table, outputs_from(options), query.get("routing_key"))
 
 
 def decode(parsed: ParsedRequest, model: Any) -> Decoded:
@@ -242,6 +243,20 @@ def check_work(n: int, model: Any, outputs: Outputs, form: str, limit: int) -> N
     )
 
 
+@functools.lru_cache(maxsize=256)
+def score_options(outputs: Outputs) -> ScoreOptions:
+    """What the core computes for what the caller asked (the few distinct option sets a
+    service sees are built once)."""
+    return ScoreOptions(
+        probabilities=True,
+        logsum=outputs.logsum or outputs.expected_max_utility,
+        surplus=outputs.surplus,
+        elasticities=outputs.elasticities,
+        aggregate=outputs.aggregate,
+        std_errors=outputs.std_errors,
+    )
+
+
 def run_score(
     model: Any, decoded: Decoded, outputs: Outputs, form: str
 ) -> tuple[ScoreResult, BatchCheck, list[FieldError]]:
@@ -250,14 +265,7 @@ def run_score(
     check = check_batch(model, decoded.batch)
     if check.problems or decoded.problems:
         raise refusal(decoded, check)
-    options = ScoreOptions(
-        probabilities=True,
-        logsum=outputs.logsum or outputs.expected_max_utility,
-        surplus=outputs.surplus,
-        elasticities=outputs.elasticities,
-        aggregate=outputs.aggregate,
-        std_errors=outputs.std_errors,
-    )
+    options = score_options(outputs)
     try:
         # Extreme inputs may overflow inside the core; the result is checked for finiteness
         # below and refused with 422, so numpy's warnings would only be noise.

@@ -10,7 +10,7 @@ from flask import Blueprint, Response, g
 from .. import auth, metrics
 from ..codecs.arrow import MEDIA_TYPE as ARROW
 from ..codecs.arrow import encode_arrow
-from ..codecs.results import aggregate_json, encode_columns, encode_rows, outputs_from
+from ..codecs.results import aggregate_json, encode_columns, encode_rows
 from ..context import registry, settings, tokens
 from ..problems import ApiError, not_found
 from ..routing import Decision, route
@@ -73,7 +73,7 @@ def _score(name: str, pinned: str | None) -> Response:
     decoded = decode(parsed, model)
     check_size(decoded.batch.size, settings().max_situations)
     g.situations = decoded.batch.size
-    outputs = outputs_from(parsed.outputs)
+    outputs = parsed.outputs
     result, check, warnings = run_score(model, decoded, outputs, parsed.form)
 
     alternatives = list(model.alternatives)
@@ -108,11 +108,14 @@ def _score(name: str, pinned: str | None) -> Response:
         out["warnings"] = [w.as_dict() for w in warnings]
         out["warning_count"] = check.warning_count
         response = Response(dumps(out), mimetype="application/json")
-    response.headers["X-Model-Name"] = name
-    response.headers["X-Model-Version"] = loaded.version
-    response.headers["X-Routing-Decision"] = decision.decision
+    headers = [
+        ("X-Model-Name", name),
+        ("X-Model-Version", loaded.version),
+        ("X-Routing-Decision", decision.decision),
+    ]
     if generation is not None:
-        response.headers["X-Routing-Generation"] = str(generation)
+        headers.append(("X-Routing-Generation", str(generation)))
+    response.headers.extend(headers)
 
     metrics.child(metrics.ROUTING, name, loaded.version, decision.decision).inc()
     metrics.child(metrics.SITUATIONS, name, loaded.version).inc(decoded.batch.size)
