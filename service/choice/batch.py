@@ -56,8 +56,10 @@ class Batch:
         x_unset, z_unset = model.unset_values
         x = x_unset[None].repeat(n, axis=0)
         z = z_unset[None].repeat(n, axis=0)
-        available = np.ones((n, n_j), dtype=bool)
-        weights = np.ones(n)
+        available = np.empty((n, n_j), dtype=bool)
+        available.fill(True)
+        weights = np.empty(n)
+        weights.fill(1.0)
         j_of, a_of, c_of = model.positions
         problems: list[BatchProblem] = []
 

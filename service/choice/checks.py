@@ -230,20 +230,23 @@ def _clipped(batch: Batch, clips: list[tuple[ValueChecks, np.ndarray, bool]]) ->
     return Batch(attributes=x, context=z, available=batch.available, weights=batch.weights)
 
 
+_FLOAT, _BOOL = np.dtype(np.float64), np.dtype(np.bool_)
+
+
 def _shape_problems(model: CompiledModel, batch: Batch) -> tuple[BatchProblem, ...]:
     n_j, n_a, n_c = len(model.alternatives), len(model.attributes), len(model.context)
-    n = np.shape(batch.attributes)[0] if np.ndim(batch.attributes) else -1
-    expect = {
-        "attributes": ((n, n_j, n_a), np.float64),
-        "context": ((n, n_c), np.float64),
-        "available": ((n, n_j), np.bool_),
-        "weights": ((n,), np.float64),
-    }
+    x = batch.attributes
+    n = x.shape[0] if isinstance(x, np.ndarray) and x.ndim else -1
+    expect = (
+        ("attributes", (n, n_j, n_a), _FLOAT),
+        ("context", (n, n_c), _FLOAT),
+        ("available", (n, n_j), _BOOL),
+        ("weights", (n,), _FLOAT),
+    )
     out = []
-    for name, (shape, dtype) in expect.items():
+    for name, shape, dtype in expect:
         arr = getattr(batch, name)
         if not isinstance(arr, np.ndarray) or arr.shape != shape or arr.dtype != dtype:
             got = f"{getattr(arr, 'shape', '?')} {getattr(arr, 'dtype', type(arr).__name__)}"
-            want = f"{shape} {np.dtype(dtype)}"
-            out.append(BatchProblem(-1, (name,), f"must be an array {want}, got {got}"))
+            out.append(BatchProblem(-1, (name,), f"must be an array {shape} {dtype}, got {got}"))
     return tuple(out)

@@ -63,9 +63,8 @@ class ScoreResult:
 def validate_options(model: CompiledModel, options: ScoreOptions) -> None:
     """Refuse options this model cannot serve (:class:`ScoringError`), before any work."""
     problems: list[Problem] = []
-    known = set(model.attributes) | set(model.context)
     for i, name in enumerate(options.elasticities):
-        if name not in known:
+        if name not in model.attributes and name not in model.context:
             problems.append(
                 Problem(
                     f"options.elasticities[{i}]",

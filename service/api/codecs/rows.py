@@ -11,6 +11,7 @@ from ..problems import FieldError
 from .decoded import Decoded, rows_locator
 
 ROOT = "$.situations"
+LOCATE = rows_locator(ROOT)
 
 
 def decode_rows(model: Any, situations: Sequence[dict[str, Any]]) -> Decoded:
@@ -21,7 +22,7 @@ def decode_rows(model: Any, situations: Sequence[dict[str, Any]]) -> Decoded:
     """
     ids = [str(s.get("id", i)) if isinstance(s, dict) else str(i) for i, s in enumerate(situations)]
     batch, problems = Batch.from_records(model, situations)
-    locate = rows_locator(ROOT)
+    locate = LOCATE
 
     errors = tuple(FieldError(locate(p), p.message) for p in problems)
 
