@@ -15,7 +15,15 @@ import numpy as np
 from flask import request
 from marshmallow import ValidationError
 
-from service.choice import BatchCheck, ScoreOptions, ScoreResult, ScoringError, check_batch, score
+from service.choice import (
+    Batch,
+    BatchCheck,
+    ScoreOptions,
+    ScoreResult,
+    ScoringError,
+    check_batch,
+    score,
+)
 from service.choice.probabilities import UtilityNotFinite
 
 from . import metrics
@@ -294,19 +302,29 @@ def shadow_score(
     live_version: str,
     shadow_version: str,
     parsed: ParsedRequest,
-    live_alternatives: tuple[str, ...],
+    live_model: Any,
+    live_batch: Batch,
     live_p: np.ndarray,
 ) -> None:
-    """Score the shadow version on the same input and record max |dP|; never raises."""
+    """Score the shadow version on the same input and record max |dP|; never raises.
+
+    When the shadow's input contract equals the live version's (same axes, policy and
+    checks: a re-estimate of the same specification), the live check stands for it and its
+    checked batch is scored directly; otherwise the request is decoded and checked again."""
     try:
         loaded = reg.get(name, shadow_version)
         model = loaded.compiled
-        decoded = decode(parsed, model)
-        check = check_batch(model, decoded.batch)
-        if check.problems or decoded.problems:
-            raise ValueError(f"{check.problem_count} problem(s) in the shadow check")
+        if model.input_contract == live_model.input_contract:
+            batch = live_batch
+        else:
+            decoded = decode(parsed, model)
+            check = check_batch(model, decoded.batch)
+            if check.problems or decoded.problems:
+                raise ValueError(f"{check.problem_count} problem(s) in the shadow check")
+            batch = check.batch
         with np.errstate(all="ignore"):
-            result = score(model, check.batch, ScoreOptions(probabilities=True, logsum=False))
+            result = score(model, batch, ScoreOptions(probabilities=True, logsum=False))
+        live_alternatives = live_model.alternatives
         shared = [a for a in live_alternatives if a in model.alternatives]
         live_idx = [live_alternatives.index(a) for a in shared]
         shadow_idx = [model.alternatives.index(a) for a in shared]

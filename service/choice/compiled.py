@@ -263,6 +263,27 @@ class CompiledModel:
         z.setflags(write=False)
         return x, z
 
+    @cached_property
+    def input_contract(self) -> tuple:
+        """What decoding and :func:`check_batch` make of a request for this model: the axes,
+        the range policy and every value check.  Two versions with equal contracts decode
+        any request to the same batch and judge it alike (built once)."""
+
+        def checks(c: ValueChecks) -> tuple:
+            arrays = (c.alternative, c.index, c.domain, c.low, c.high)
+            return (c.fields, *(a.tobytes() for a in arrays))
+
+        return (
+            self.alternatives,
+            self.attributes,
+            self.context,
+            self.spec.range_policy,
+            checks(self.attribute_checks),
+            checks(self.context_checks),
+            self.unset_values[0].tobytes(),
+            self.unset_values[1].tobytes(),
+        )
+
     @property
     def required_attributes(self) -> tuple[tuple[str, str], ...]:
         """(alternative, attribute) pairs the model uses: what a request must supply."""

@@ -122,12 +122,11 @@ def _score(name: str, pinned: str | None) -> Response:
     if check.warning_count:
         metrics.child(metrics.OUT_OF_RANGE, name, loaded.version).inc(check.warning_count)
     if shadow is not None and result.probabilities is not None:
-        live_p = result.probabilities
-        live_alts = tuple(model.alternatives)
+        live_p, checked = result.probabilities, check.batch
         reg = registry()
 
         def _shadow() -> None:
-            shadow_score(reg, name, loaded.version, shadow, parsed, live_alts, live_p)
+            shadow_score(reg, name, loaded.version, shadow, parsed, model, checked, live_p)
 
         response.call_on_close(_shadow)
     return response
