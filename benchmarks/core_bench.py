@@ -40,8 +40,10 @@ COMMAND = ".venv/bin/python benchmarks/core_bench.py"
 K = 6
 
 
-def make_model(j: int, nested: bool = False):
-    """An invented retail-basket model: J stores, K generic attributes, J-1 constants."""
+def make_model(j: int, nested: bool = False, interactions: bool = False):
+    """An invented retail-basket model: J stores, K generic attributes, J-1 constants;
+    ``interactions`` adds a basket-size context variable on the price of every store and on
+    each constant (2J - 1 terms evaluated one by one, beside the dense linear block)."""
     alts = [f"store{i}" for i in range(j)]
     attrs = [f"x{k}" for k in range(K)]
     attrs[0] = "price"
@@ -57,7 +59,18 @@ def make_model(j: int, nested: bool = False):
         },
     }
     rng = np.random.default_rng(1)
+    if interactions:
+        spec["context"] = [{"name": "basket"}]
+        for i, a in enumerate(alts):
+            spec["utilities"][a].append(
+                {"coefficient": "b_price_basket", "attribute": "price", "context": "basket"}
+            )
+            if i:
+                spec["utilities"][a].append({"coefficient": f"b_basket_{a}", "context": "basket"})
     est = {f"b_{x}": float(rng.normal(0, 0.5)) for x in attrs}
+    if interactions:
+        est["b_price_basket"] = 0.05
+        est.update({f"b_basket_{a}": float(rng.normal(0, 0.2)) for a in alts[1:]})
     est["b_price"] = -0.4
     est.update({f"asc_{a}": float(rng.normal(0, 1)) for a in alts[1:]})
     if nested:
@@ -70,12 +83,12 @@ def make_model(j: int, nested: bool = False):
     return compile_model(spec_from_dict(spec), Coefficients.from_mapping(est))
 
 
-def make_batch(n: int, j: int, seed: int = 0) -> Batch:
+def make_batch(n: int, j: int, seed: int = 0, context: int = 0) -> Batch:
     rng = np.random.default_rng(seed)
     x = rng.normal(0.0, 1.0, (n, j, K))
     avail = rng.random((n, j)) >= 0.1
     avail[:, 0] = True
-    return Batch(x, np.zeros((n, 0)), avail, np.ones(n))
+    return Batch(x, rng.uniform(0.5, 2.0, (n, context)), avail, np.ones(n))
 
 
 def reference(model, batch: Batch) -> tuple[np.ndarray, np.ndarray]:
@@ -217,6 +230,8 @@ def run(quick: bool) -> str:
 
     batch = make_batch(n_mid, 5)
     nested = make_model(5, nested=True)
+    interacting = make_model(5, interactions=True)
+    batch_with_context = make_batch(n_mid, 5, context=1)
     names = model.coefficients.names
     with_cov = compile_model(
         model.spec,
@@ -236,9 +251,13 @@ def run(quick: bool) -> str:
         ("+ probability std errors (delta method)", with_cov, ScoreOptions(std_errors=True)),
         ("nested logit, default", nested, ScoreOptions()),
         ("nested logit + elasticities wrt price", nested, ScoreOptions(elasticities=("price",))),
+        ("context interactions (9 terms one by one), default", interacting, ScoreOptions()),
     ]
     times = best_of_interleaved(
-        [lambda m=m, o=o: score(m, batch, o) for _, m, o in cases],
+        [
+            lambda m=m, o=o: score(m, batch_with_context if m is interacting else batch, o)
+            for _, m, o in cases
+        ],
         15,
     )
     option_rows = [

@@ -59,61 +59,6 @@ class TermArrays:
 
 
 @dataclass(frozen=True, eq=False)
-class GeneralBlock:
-    """The general terms (T of them, ordered by alternative) laid out to be evaluated
-    together: gather the attribute cell of every term, apply the transforms and context
-    factors in place where they apply, scale by beta and sum each alternative's run of
-    terms.  A term's non-finite feature stays inside its own alternative's sum."""
-
-    attribute_terms: np.ndarray
-    """Positions (in 0..T-1) of the terms with an attribute; the others' feature is 1."""
-    cells: np.ndarray
-    """Flat cell alternative * A + attribute of each of the ``attribute_terms``."""
-    log: np.ndarray | None
-    """(T,) bool: terms under log (None: there are none)."""
-    log1p: np.ndarray | None
-    """(T,) bool: terms under log1p (None: there are none)."""
-    context: np.ndarray | None
-    """(T,) context index of each term, 0 where it has none (None: no term has one)."""
-    has_context: np.ndarray
-    """(T,) bool."""
-    beta: np.ndarray
-    """(T,) the coefficient of each term."""
-    starts: np.ndarray
-    """Start of each alternative's run of terms (for ``np.add.reduceat``)."""
-    alternatives: np.ndarray | slice
-    """The alternative of each run (``slice(None)`` when every alternative has one, in
-    order: then the sums add to V without a gather)."""
-
-    def __len__(self) -> int:
-        return len(self.beta)
-
-
-def _general_block(
-    terms: TermArrays, beta: np.ndarray, n_alternatives: int, n_attributes: int
-) -> GeneralBlock:
-    has_attribute = terms.attribute != NONE
-    has_context = terms.context != NONE
-    log = has_attribute & (terms.transform == LOG)
-    log1p = has_attribute & (terms.transform == LOG1P)
-    starts = np.flatnonzero(np.diff(terms.alternative, prepend=-1) != 0)
-    which = np.flatnonzero(has_attribute)
-    runs = terms.alternative[starts]
-    every = np.array_equal(runs, np.arange(n_alternatives))
-    return GeneralBlock(
-        attribute_terms=which,
-        cells=terms.alternative[which] * n_attributes + terms.attribute[which],
-        log=log if log.any() else None,
-        log1p=log1p if log1p.any() else None,
-        context=np.where(has_context, terms.context, 0) if has_context.any() else None,
-        has_context=has_context,
-        beta=beta[terms.coefficient],
-        starts=starts,
-        alternatives=slice(None) if every else runs,
-    )
-
-
-@dataclass(frozen=True, eq=False)
 class ValueChecks:
     """The values a model uses, R of them, with what check_batch requires of each."""
 
@@ -219,8 +164,8 @@ class CompiledModel:
     """(J, A): summed beta of identity, context-free attribute terms."""
     constants: np.ndarray
     """(J,): summed alternative-specific constants."""
-    general_terms: GeneralBlock
-    """Terms with a transform or a context variable, evaluated together over the batch."""
+    general_terms: TermArrays
+    """Terms with a transform or a context variable, evaluated one by one over the batch."""
     required: np.ndarray
     """(J, A) bool: cells some term of the alternative uses."""
     required_context_mask: np.ndarray
@@ -403,7 +348,7 @@ def compile_model(spec: ModelSpec, coefficients: Coefficients) -> CompiledModel:
         terms=terms,
         linear=linear,
         constants=constants,
-        general_terms=_general_block(general, beta, n_j, n_a),
+        general_terms=general,
         required=required,
         required_context_mask=required_context_mask,
         log_cells=log_cells,

@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from service.choice.batch import Batch
-from service.choice.compiled import IDENTITY, LOG, NONE, CompiledModel, GeneralBlock
+from service.choice.compiled import IDENTITY, LOG, NONE, CompiledModel
 
 CHUNK_BYTES = 2**21
 """Rows of the attribute array are multiplied in blocks of about this size, so that each
@@ -37,45 +37,24 @@ def transform_slope(code: int, x: np.ndarray) -> np.ndarray:
 
 
 def utilities(model: CompiledModel, batch: Batch) -> np.ndarray:
-    """V (J, N).  Over cache-sized blocks of rows: the dense linear block as a stacked
-    matrix-vector product (one per alternative), then every transformed or context term at
-    once (:class:`GeneralBlock`), each alternative's terms summed with ``np.add.reduceat``."""
+    """V (J, N).  The dense linear block is a stacked matrix-vector product (one per
+    alternative) over cache-sized blocks of rows; transformed and context terms are added
+    one term at a time over the whole batch."""
     x, z = batch.attributes, batch.context
     n_j, n = len(model.alternatives), batch.size
     v = np.empty((n_j, n))
     weights = model.linear[:, :, None]
-    general = model.general_terms
     step = max(256, CHUNK_BYTES // max(1, x.shape[1] * x.shape[2] * x.itemsize))
-    # Overflow gives an infinite or NaN utility, which choice_probabilities refuses by name;
-    # cells of unavailable alternatives may hold anything (their utility is masked).
+    for start in range(0, n, step):
+        stop = min(n, start + step)
+        np.matmul(x[start:stop].transpose(1, 0, 2), weights, out=v[:, start:stop, None])
+    v += model.constants[:, None]
+    beta = model.beta
+    # Overflow gives an infinite or NaN utility, which choice_probabilities refuses by name.
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-        for start in range(0, n, step):
-            stop = min(n, start + step)
-            np.matmul(x[start:stop].transpose(1, 0, 2), weights, out=v[:, start:stop, None])
-            if len(general):
-                cells = x[start:stop].reshape(stop - start, -1)
-                sums = _general_sums(general, cells, z[start:stop])
-                v[general.alternatives, start:stop] += sums.T
-        v += model.constants[:, None]
+        for term in model.general_terms.rows:
+            v[term[0]] += beta[term[4]] * _feature(term, x, z)
     return v
-
-
-def _general_sums(general: GeneralBlock, cells: np.ndarray, z: np.ndarray) -> np.ndarray:
-    """(rows, alternatives with general terms): sum over each alternative's terms of
-    beta * t(x) * z, for rows of flattened cells (rows, J * A) and context (rows, C)."""
-    if len(general.attribute_terms) == len(general):
-        f = cells[:, general.cells]
-    else:
-        f = np.ones((len(cells), len(general)))
-        f[:, general.attribute_terms] = cells[:, general.cells]
-    if general.log is not None:
-        np.log(f, out=f, where=general.log)
-    if general.log1p is not None:
-        np.log1p(f, out=f, where=general.log1p)
-    if general.context is not None:
-        np.multiply(f, z[:, general.context], out=f, where=general.has_context)
-    f *= general.beta
-    return np.add.reduceat(f, general.starts, axis=1)
 
 
 def _feature(
