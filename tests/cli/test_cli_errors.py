@@ -12,8 +12,8 @@ from pathlib import Path
 import pytest
 
 from service.cli import main
-from tests.store.s3_server import free_port
 from tests.store.store_cases import FERRY_SPEC
+from tests.support.processes import free_port
 
 CHOICECAST = Path(sys.executable).parent / "choicecast"
 

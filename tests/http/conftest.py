@@ -4,10 +4,8 @@ started once per session under gunicorn on 127.0.0.1 (stopped at the end)."""
 from __future__ import annotations
 
 import json
-import os
 import secrets
 import shutil
-import subprocess
 import sys
 from collections.abc import Iterator
 from pathlib import Path
@@ -17,7 +15,9 @@ import pytest
 sys.path.insert(0, str(Path(__file__).parent))
 
 from http_models import seed_store
-from http_server import REPO, Server, free_port, serve_command, stop, wait_ready
+from http_server import Server
+
+from tests.support.processes import start_service
 
 
 @pytest.fixture(scope="session")
@@ -46,29 +46,16 @@ def server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Server]:
     score_token, admin_token = secrets.token_urlsafe(24), secrets.token_urlsafe(24)
     tokens = root / "tokens.json"
     tokens.write_text(json.dumps({"score": [score_token], "admin": [admin_token]}))
-    port = free_port()
-    env = {
-        **os.environ,
-        "CHOICECAST_TOKENS_FILE": str(tokens),
-        "CHOICECAST_POLL_SECONDS": "0.3",
-        "PROMETHEUS_MULTIPROC_DIR": str(root / "metrics"),
-    }
-    env.pop("CHOICECAST_SCORE_TOKENS", None)
-    env.pop("CHOICECAST_ADMIN_TOKENS", None)
-    log = root / "server.log"
-    with log.open("wb") as out:
-        process = subprocess.Popen(
-            serve_command(store, port, 2),
-            cwd=REPO,
-            env=env,
-            stdout=out,
-            stderr=subprocess.STDOUT,
-            start_new_session=True,
-        )
-    url = f"http://127.0.0.1:{port}"
+    service = start_service(
+        store,
+        root,
+        env={"CHOICECAST_TOKENS_FILE": str(tokens)},
+        workers=2,
+        poll_seconds=0.3,
+        name="server",
+    )
     try:
-        wait_ready(url, process)
-        yield Server(url, store, score_token, admin_token, log)
+        yield Server(service.url, store, score_token, admin_token, service.log)
     finally:
-        stop(process)
-        shutil.rmtree(root / "metrics", ignore_errors=True)
+        service.stop()
+        shutil.rmtree(root / "server-metrics", ignore_errors=True)

@@ -17,7 +17,8 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
-from http_server import REPO, free_port, serve_command, stop, wait_ready
+
+from tests.support.processes import REPO, cli_ok, serving
 
 DOC = REPO / "docs" / "api.md"
 README = REPO / "README.md"
@@ -48,28 +49,12 @@ def json_documents(text: str) -> list[dict]:
 
 
 def demo_server(root: Path, env_extra: dict[str, str]) -> Iterator[str]:
+    """The demo store under ``choicecast serve`` (2 workers, the service's own polling
+    interval), with ``env_extra`` (token settings) added to a clean environment."""
     store = root / "store"
-    choicecast = str(Path(sys.executable).with_name("choicecast"))
-    subprocess.run(
-        [choicecast, "demo", "--store", str(store), "--populations", str(root / "pop")],
-        check=True, capture_output=True, timeout=120,
-    )  # fmt: skip
-    port = free_port()
-    env = {**os.environ, "PROMETHEUS_MULTIPROC_DIR": str(root / "metrics"), **env_extra}
-    for key in ("CHOICECAST_SCORE_TOKENS", "CHOICECAST_ADMIN_TOKENS", "CHOICECAST_TOKENS_FILE"):
-        if key not in env_extra:
-            env.pop(key, None)
-    with (root / "server.log").open("wb") as log:
-        process = subprocess.Popen(
-            serve_command(str(store), port, 2), cwd=REPO, env=env, stdout=log,
-            stderr=subprocess.STDOUT, start_new_session=True,
-        )  # fmt: skip
-    url = f"http://127.0.0.1:{port}"
-    try:
-        wait_ready(url, process)
-        yield url
-    finally:
-        stop(process)
+    cli_ok("demo", "--store", str(store), "--populations", str(root / "pop"), cwd=root)
+    with serving(str(store), root, env=env_extra, workers=2, poll_seconds=None, name="server") as s:
+        yield s.url
 
 
 @pytest.fixture(scope="module")

@@ -13,7 +13,8 @@ from store_cases import FERRY_NAMES, FERRY_SPEC, publish_ferry
 from model_store import StoreError, StoreUnavailable, open_store
 from model_store.inputs import read_coefficients, read_covariance, read_model_inputs
 from service.choice.spec import SpecError, validate_model
-from tests.store.s3_server import BUCKET, free_port
+from tests.store.s3_server import BUCKET
+from tests.support.processes import free_port
 
 
 def write(tmp_path, name: str, text: str):

@@ -209,17 +209,19 @@ def start_service(
     *,
     env: Mapping[str, str] | None = None,
     workers: int = 2,
-    poll_seconds: float = 0.2,
+    poll_seconds: float | None = 0.2,
     ready_timeout: float = 60.0,
     require_ready: bool = True,
     name: str = "service",
 ) -> Running:
     """``choicecast serve`` on a free port; returns once /readyz answers (200 unless
-    ``require_ready`` is False).  ``env`` is added to a clean environment."""
+    ``require_ready`` is False).  ``env`` is added to a clean environment; ``poll_seconds``
+    None leaves the service's own store polling interval."""
     port = free_port()
+    polling = {} if poll_seconds is None else {"CHOICECAST_POLL_SECONDS": str(poll_seconds)}
     full_env = clean_env(
         {
-            "CHOICECAST_POLL_SECONDS": str(poll_seconds),
+            **polling,
             "PROMETHEUS_MULTIPROC_DIR": str(_fresh_dir(log_dir / f"{name}-metrics")),
             **(env or {}),
         }
