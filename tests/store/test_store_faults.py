@@ -212,17 +212,16 @@ def test_non_psd_and_malformed_covariance(tmp_path):
         read_model_inputs(spec_file(tmp_path), coef_csv(tmp_path), write(tmp_path, "c.json", short))
 
 
+@pytest.mark.timeout(60)  # a refused connection must not be retried forever (a hang fails)
 def test_unreachable_s3_endpoint_fails_fast_with_a_clear_error(monkeypatch):
     monkeypatch.setenv("AWS_ACCESS_KEY_ID", "k")
     monkeypatch.setenv("AWS_SECRET_ACCESS_KEY", "s")
     monkeypatch.setenv("CHOICECAST_S3_CONNECT_TIMEOUT", "1")
     store = open_store("s3://nowhere/x", endpoint_url=f"http://127.0.0.1:{free_port()}")
-    started = time.monotonic()
     with pytest.raises(StoreUnavailable, match=r"store s3://nowhere/x at http://127\.0\.0\.1"):
         store.list_versions("ferry")
     with pytest.raises(StoreUnavailable):
         store.check()
-    assert time.monotonic() - started < 60  # bounded: a refused connection is not retried forever
 
 
 def test_missing_bucket_is_reported(s3_endpoint):
