@@ -235,7 +235,7 @@ class Registry:
                 if new.shadow in failed:
                     new = ModelRouting(new.generation, new.live, None)
                 routes[name] = new
-                metrics.ROUTING_GENERATION.labels(name).set(new.generation)
+                metrics.child(metrics.ROUTING_GENERATION, name).set(new.generation)
             for name in sorted(set(old.routes) - set(names)):
                 # A routed model missing from the listing: keep serving it, report it.
                 problems.append(f"{name}: no longer listed by the store; serving the last state")

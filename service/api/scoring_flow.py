@@ -333,8 +333,10 @@ def shadow_score(
         divergence = float(dp.max()) if dp.size else 0.0
         if not np.isfinite(divergence):
             raise ValueError("non-finite shadow probabilities")
-        metrics.SHADOW_DIVERGENCE.labels(name, live_version, shadow_version).observe(divergence)
-        metrics.SHADOW_LAST.labels(name, live_version, shadow_version).set(divergence)
+        metrics.child(metrics.SHADOW_DIVERGENCE, name, live_version, shadow_version).observe(
+            divergence
+        )
+        metrics.child(metrics.SHADOW_LAST, name, live_version, shadow_version).set(divergence)
     except Exception as exc:  # the shadow never fails a request
-        metrics.SHADOW_FAILURES.labels(name, shadow_version).inc()
+        metrics.child(metrics.SHADOW_FAILURES, name, shadow_version).inc()
         log.warning("shadow scoring of %s/%s failed: %s", name, shadow_version, exc)
