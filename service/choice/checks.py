@@ -185,6 +185,9 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
     )
 
 
+_LARGEST = float(np.finfo(np.float64).max)
+
+
 def _nothing_to_report(model: CompiledModel, batch: Batch) -> bool:
     """Whether a batch passes every check of :func:`check_batch`, judged in a few whole-batch
     comparisons: each used value of an available alternative and each used context value
@@ -209,9 +212,6 @@ def _nothing_to_report(model: CompiledModel, batch: Batch) -> bool:
     inside = values >= lo
     inside &= values <= hi
     return bool(inside.all())
-
-
-_LARGEST = float(np.finfo(np.float64).max)
 
 
 def _clipped(batch: Batch, clips: list[tuple[ValueChecks, np.ndarray, bool]]) -> Batch:
