@@ -3,7 +3,6 @@ decode it against a model, check and score it, and score the shadow version afte
 
 from __future__ import annotations
 
-import contextlib
 import functools
 import json
 import logging
@@ -275,14 +274,10 @@ def run_score(
     if check.problems or decoded.problems:
         raise refusal(decoded, check)
     options = score_options(outputs)
-    # Derivatives, surplus, aggregates and standard errors of extreme inputs may overflow;
-    # the result is checked for finiteness below and refused with 422, so numpy's warnings
-    # would only be noise.  Probabilities and logsums need no such guard: the core computes
-    # utilities under its own errstate, and the max-shifted softmax cannot overflow.
-    derived = options.elasticities or options.surplus or options.aggregate or options.std_errors
-    quiet = np.errstate(all="ignore") if derived else contextlib.nullcontext()
     try:
-        with quiet:
+        # Extreme inputs may overflow inside the core; the result is checked for finiteness
+        # below and refused with 422, so numpy's warnings would only be noise.
+        with np.errstate(all="ignore"):
             result = score(model, check.batch, options)
     except UtilityNotFinite as exc:
         raise not_finite(decoded, exc) from None

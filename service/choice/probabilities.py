@@ -102,7 +102,9 @@ def _multinomial(
 def _shifted_softmax(v: np.ndarray, available: np.ndarray, shift: np.ndarray) -> ChoiceState:
     """P = exp(V - shift) / sum exp(V - shift), logsum = ln sum exp(V - shift) + shift (in
     place on ``v``).  With shift the finite maximum, the largest term is exp(0) = 1, so the
-    sum is >= 1: nothing overflows or divides by zero (log-sum-exp; common practice)."""
+    sum is >= 1: exp never overflows and nothing divides by zero (log-sum-exp; common
+    practice).  Utilities more than the largest float apart make V - shift overflow to
+    -inf, a probability of exactly 0 (NumPy warns of the overflow)."""
     p = v
     p -= shift
     np.exp(p, out=p)
