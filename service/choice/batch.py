@@ -49,8 +49,9 @@ class Batch:
         A record is ``{"attributes": {alt: {attr: value}}, "context": {name: value},
         "available": {alt: bool}, "weight": w}`` (availability defaults to all true, the
         weight to 1; an ``id`` key is ignored).  Missing values the model uses become NaN
-        (reported by :func:`check_batch`); unused ones 0.  Unknown names and values of the
-        wrong type are reported in ``problems``, their cells left NaN.
+        (reported by :func:`check_batch`); unused ones 0, whatever the record gives for them.
+        Unknown names and values of the wrong type are reported in ``problems``, their cells
+        left NaN (used) or 0 (unused).
         """
         n, n_j = len(situations), len(model.alternatives)
         x_unset, z_unset = model.unset_values
@@ -61,6 +62,9 @@ class Batch:
         weights = np.empty(n)
         weights.fill(1.0)
         j_of, a_of, c_of = model.positions
+        # Values of cells and context variables no term uses are type-checked, then ignored
+        # (left 0), as every request form does.
+        used_cells, used_context = model.required.tolist(), model.required_context_mask.tolist()
         problems: list[BatchProblem] = []
 
         def bad(i: int, message: str, *path: str) -> None:
@@ -89,7 +93,7 @@ class Batch:
                         bad(i, "not an attribute of the model", "attributes", alt, str(name))
                     elif (v := _number(value)) is None:
                         bad(i, "must be a number", "attributes", alt, name)
-                    else:
+                    elif used_cells[j_of[alt]][a_of[name]]:
                         x[i, j_of[alt], a_of[name]] = v
             ctx = rec.get("context", {})
             if not _is_mapping(ctx):
@@ -100,7 +104,7 @@ class Batch:
                     bad(i, "not a context variable of the model", "context", str(name))
                 elif (v := _number(value)) is None:
                     bad(i, "must be a number", "context", name)
-                else:
+                elif used_context[c_of[name]]:
                     z[i, c_of[name]] = v
             avail = rec.get("available", {})
             if not _is_mapping(avail):

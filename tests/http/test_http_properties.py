@@ -29,8 +29,8 @@ def strict(text: str):
 EVERY_OUTPUT = {"logsum": True, "surplus": True, "elasticities": ["fare", "income"],
                 "aggregate": True, "std_errors": True}  # fmt: skip
 PLAIN = {"logsum": True, "expected_max_utility": True}
-"""Probabilities and logsums alone take the scoring path that silences no numpy warning
-(warnings are errors in this suite, so one there would surface as a 500)."""
+"""Probabilities and logsums alone (warnings are errors in this suite: one would surface as a
+500)."""
 
 
 @pytest.mark.parametrize("options", [EVERY_OUTPUT, PLAIN], ids=["every output", "plain"])
@@ -90,3 +90,24 @@ def test_any_scenario_gives_a_clean_answer(client, op, value, alt, attr, remove)
     out = strict(r.get_data(as_text=True))
     if r.status_code == 200:
         assert math.isclose(sum(out["variants"][0]["shares"].values()), 1.0, abs_tol=1e-9)
+
+
+@pytest.mark.parametrize("options", [EVERY_OUTPUT, PLAIN], ids=["every output", "plain"])
+def test_values_the_model_ignores_never_spoil_an_answer(client, options):
+    """Cells of an unavailable alternative and cells no term uses are ignored, whatever they
+    hold (Batch's contract): infinities there leave a 200, equal to the same situation with
+    plain values, rather than a NaN or a refusal."""
+    plain = situation(3)
+    plain["available"] = {"ferry": False}
+    odd = situation(3, ferry__fare=math.inf, ferry__time=-math.inf, bike__fare=math.inf)
+    odd["available"] = {"ferry": False}
+    answers = []
+    for s in (plain, odd):
+        r = client.post(
+            SCORE,
+            data=json.dumps({"situations": [s], "return": options}),
+            content_type="application/json",
+        )
+        assert r.status_code == 200, r.get_data(as_text=True)
+        answers.append(strict(r.get_data(as_text=True))["situations"])
+    assert answers[0] == answers[1]

@@ -54,13 +54,13 @@ def decode_columns(model: Any, columns: dict[str, Any]) -> Decoded:
             path = f"{ROOT}.attributes.{alt}.{attr}"
             if attr not in a_of:
                 errors.append(FieldError(path, "not an attribute of the model"))
-            elif fits(path, column):
-                x[:, j_of[alt], a_of[attr]] = column
+            elif fits(path, column) and model.required[j_of[alt], a_of[attr]]:
+                x[:, j_of[alt], a_of[attr]] = column  # a cell no term uses stays 0
     for name, column in columns.get("context", {}).items():
         path = f"{ROOT}.context.{name}"
         if name not in c_of:
             errors.append(FieldError(path, "not a context variable of the model"))
-        elif fits(path, column):
+        elif fits(path, column) and model.required_context_mask[c_of[name]]:
             z[:, c_of[name]] = column
     for alt, column in columns.get("available", {}).items():
         path = f"{ROOT}.available.{alt}"

@@ -22,9 +22,8 @@ def decode_rows(model: Any, situations: Sequence[dict[str, Any]]) -> Decoded:
     """
     ids = [str(s.get("id", i)) if isinstance(s, dict) else str(i) for i, s in enumerate(situations)]
     batch, problems = Batch.from_records(model, situations)
-    locate = LOCATE
 
-    errors = tuple(FieldError(locate(p), p.message) for p in problems)
+    errors = tuple(FieldError(LOCATE(p), p.message) for p in problems)
 
     def absent(p: BatchProblem) -> bool:
         """A used attribute or context value left out of its situation."""
@@ -37,4 +36,4 @@ def decode_rows(model: Any, situations: Sequence[dict[str, Any]]) -> Decoded:
             node = node[key]
         return False
 
-    return Decoded(ids=ids, batch=batch, problems=errors, locate=locate, form="rows", absent=absent)
+    return Decoded(ids=ids, batch=batch, problems=errors, locate=LOCATE, form="rows", absent=absent)
