@@ -7,7 +7,6 @@ Log lines never contain tokens or request bodies.
 
 from __future__ import annotations
 
-import itertools
 import json
 import logging
 import os
@@ -25,27 +24,11 @@ REQUEST_ID = re.compile(r"^[A-Za-z0-9._:-]{1,128}$")
 access = logging.getLogger("choicecast.access")
 
 
-class RequestIds:
-    """New request ids: 32 hex digits, a 64-bit random prefix drawn once per process (again
-    in a forked child) and a 64-bit counter, so ids never repeat within a process and meet
-    another process's only by chance (1 in 2^64), without a random draw per request.  Also
-    keeps the process id for the access lines (read once per process, not per request)."""
-
-    def __init__(self) -> None:
-        self._reset()
-        os.register_at_fork(after_in_child=self._reset)
-
-    def _reset(self) -> None:
-        self._prefix = os.urandom(8).hex()
-        self._count = itertools.count(1)
-        self.pid = os.getpid()
-
-    def new(self) -> str:
-        return f"{self._prefix}{next(self._count):016x}"
+def new_request_id() -> str:
+    """32 random hex digits (unpredictable, so they say nothing of a worker's traffic)."""
+    return os.urandom(16).hex()
 
 
-_request_ids = RequestIds()
-new_request_id = _request_ids.new
 _LINE = json.JSONEncoder(separators=(",", ":"), default=str)
 
 
@@ -139,7 +122,7 @@ def install(app: Flask, log_requests: bool) -> None:
                 "bytes_in": req.content_length or 0,
                 "bytes_out": response.content_length or 0,
                 "remote": req.remote_addr,
-                "pid": _request_ids.pid,
+                "pid": os.getpid(),
             }
             for key in ("model", "version", "decision", "generation", "situations", "problem"):
                 value = ctx.get(key)
@@ -153,8 +136,12 @@ def write_access_line(entry: dict) -> None:
     """The request's JSON line on ``sys.stdout``, when the ``choicecast`` logger passes INFO.
     Written directly rather than through a LogRecord: the record, the caller lookup and the
     handler chain would cost more than the rest of the line.  One ``write`` of a whole line
-    (lines of concurrent threads never interleave), flushed as the log handler would be."""
+    (lines of concurrent threads never interleave), flushed as the log handler would be; like
+    the log handler, a failing stdout never fails the request."""
     if access.isEnabledFor(logging.INFO):
-        out = sys.stdout
-        out.write(_LINE.encode(entry) + "\n")
-        out.flush()
+        try:
+            out = sys.stdout
+            out.write(_LINE.encode(entry) + "\n")
+            out.flush()
+        except (OSError, ValueError, AttributeError):
+            pass  # a closed, full or missing stdout loses the line, never the answer

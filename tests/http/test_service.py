@@ -191,6 +191,20 @@ def test_access_log_is_one_json_line_per_request(store_uri, capsys):
     assert "not-logged-anywhere" not in json.dumps(entry)
 
 
+def test_a_broken_stdout_loses_the_access_line_not_the_answer(store_uri, monkeypatch):
+    class BrokenPipe:
+        def write(self, text):
+            raise BrokenPipeError("reader gone")
+
+        def flush(self):
+            raise BrokenPipeError("reader gone")
+
+    app = create_app({"store": store_uri, "poll_seconds": 0})
+    monkeypatch.setattr("sys.stdout", BrokenPipe())
+    r = app.test_client().post(SCORE, json={"situations": [situation(0)]})
+    assert r.status_code == 200 and r.get_json()["version"] == "v1"
+
+
 def test_model_listing_and_version_detail(client):
     listing = ModelListSchema().load(client.get("/v1/models").get_json())
     (model,) = [m for m in listing["models"] if m["name"] == "harbour"]
