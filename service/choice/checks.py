@@ -7,7 +7,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from service.choice.batch import Batch, BatchProblem
-from service.choice.compiled import CompiledModel, ValueChecks
+from service.choice.compiled import LARGEST_FLOAT, CompiledModel, ValueChecks
 
 MAX_REPORTED = 100
 """At most this many problems (and as many warnings) are listed; the counts say the rest."""
@@ -116,8 +116,8 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
         return BatchCheck((bp,), (), batch, 1, 0)
     # A batch small enough to judge at once is accepted in a few comparisons when nothing
     # is to be reported; otherwise the checks below find and name each finding.
-    values = n * (len(model.attribute_checks) + len(model.context_checks))
-    if values <= CHUNK_VALUES and _nothing_to_report(model, batch):
+    judged = n * (len(model.attribute_checks) + len(model.context_checks))
+    if judged <= CHUNK_VALUES and _nothing_to_report(model, batch):
         return BatchCheck((), (), batch, 0, 0)
     problems, warnings = _Collector(max_reported), _Collector(max_reported)
     avail, w = batch.available, batch.weights
@@ -126,7 +126,9 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
     if w_finite.all():
         negative = w < 0
         problems.add(negative, ("weight",), "must be >= 0 (got {v:g})", w)
-        if not negative.any() and not w.sum() > 0:
+        with np.errstate(over="ignore"):  # a sum that overflows is inf, still positive
+            total = w.sum()
+        if not negative.any() and not total > 0:
             problems.add_whole(("weight",), "weights must have a positive sum")
     else:
         problems.add(~w_finite, ("weight",), "must be finite (got {v})", w)
@@ -185,9 +187,6 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
     )
 
 
-_LARGEST = float(np.finfo(np.float64).max)
-
-
 def _nothing_to_report(model: CompiledModel, batch: Batch) -> bool:
     """Whether a batch passes every check of :func:`check_batch`, judged in a few whole-batch
     comparisons: each used value of an available alternative and each used context value
@@ -196,7 +195,7 @@ def _nothing_to_report(model: CompiledModel, batch: Batch) -> bool:
     means there is something to report, and the full check finds and names it."""
     avail, w = batch.available, batch.weights
     lightest, heaviest = w.min(), w.max()  # NaN if any weight is NaN (then both tests fail)
-    if not (lightest >= 0 and 0 < heaviest <= _LARGEST and avail.any(axis=1).all()):
+    if not (lightest >= 0 and 0 < heaviest <= LARGEST_FLOAT and avail.any(axis=1).all()):
         return False
     cells, variables = model.attribute_checks, model.context_checks
     lo, hi = cells.accepted
@@ -235,8 +234,7 @@ _FLOAT, _BOOL = np.dtype(np.float64), np.dtype(np.bool_)
 
 def _shape_problems(model: CompiledModel, batch: Batch) -> tuple[BatchProblem, ...]:
     n_j, n_a, n_c = len(model.alternatives), len(model.attributes), len(model.context)
-    x = batch.attributes
-    n = x.shape[0] if isinstance(x, np.ndarray) and x.ndim else -1
+    n = np.shape(batch.attributes)[0] if np.ndim(batch.attributes) else -1
     expect = (
         ("attributes", (n, n_j, n_a), _FLOAT),
         ("context", (n, n_c), _FLOAT),

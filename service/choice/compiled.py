@@ -24,6 +24,7 @@ IDENTITY, LOG, LOG1P = 0, 1, 2
 TRANSFORM_CODES = {"identity": IDENTITY, "log": LOG, "log1p": LOG1P}
 NONE = -1
 """Index meaning "no attribute" / "no context variable" / "no nest"."""
+LARGEST_FLOAT = float(np.finfo(np.float64).max)
 
 
 @dataclass(frozen=True)
@@ -85,9 +86,8 @@ class ValueChecks:
         """(R,) closed bounds [lo, hi] inside which a value passes every check at once: above
         the domain bound (the next float up from it), inside the estimation range, and
         finite (lo >= -max float, hi <= max float; NaN fails every comparison)."""
-        largest = np.finfo(np.float64).max
-        lo = np.maximum(np.maximum(self.low, np.nextafter(self.domain, np.inf)), -largest)
-        hi = np.minimum(self.high, largest)
+        lo = np.maximum(np.maximum(self.low, np.nextafter(self.domain, np.inf)), -LARGEST_FLOAT)
+        hi = np.minimum(self.high, LARGEST_FLOAT)
         lo.setflags(write=False)
         hi.setflags(write=False)
         return lo, hi

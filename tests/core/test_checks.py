@@ -343,3 +343,14 @@ def test_every_value_at_or_beside_a_bound_is_judged_alike_at_once_and_in_full(po
         accepted += clean
         refused += not clean
     assert accepted and refused
+
+
+def test_weights_whose_sum_overflows_are_still_a_positive_sum(mnl):
+    """The full check (here taken because a value lies outside its range) sums the weights:
+    1e308 + 1e308 overflows to inf, which is positive, and must not raise (warnings are
+    errors in this suite)."""
+    batch = commute_batch(mnl, 2, seed=4)
+    batch.weights[:] = 1e308
+    batch.attributes[0, 0, 0] = 99.0  # car fare above the range [0, 30]: a warning
+    check = check_batch(mnl, batch)
+    assert check.ok and check.warning_count == 1
