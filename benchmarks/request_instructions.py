@@ -14,6 +14,7 @@ gunicorn).  gunicorn's own HTTP work is the same for both and is not counted.  W
 from __future__ import annotations
 
 import argparse
+import atexit
 import contextlib
 import json
 import os
@@ -32,6 +33,7 @@ WARM_UP = 50
 def child(target: str, store: str, count: int) -> None:
     """The measured loop (run under valgrind): WARM_UP requests, then ``count`` more."""
     os.environ["PROMETHEUS_MULTIPROC_DIR"] = tempfile.mkdtemp(prefix="choicecast-prom-")
+    atexit.register(shutil.rmtree, os.environ["PROMETHEUS_MULTIPROC_DIR"], ignore_errors=True)
     sys.path.insert(0, str(REPO / "benchmarks"))
     from http_bench import MODEL, empty_app, situations
 

@@ -9,9 +9,11 @@ specification).  The second case is the same shadow scored as if its contract di
 
 from __future__ import annotations
 
+import atexit
 import json
 import os
 import platform
+import shutil
 import sys
 import tempfile
 import timeit
@@ -19,7 +21,9 @@ from pathlib import Path
 
 REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO))
-os.environ.setdefault("PROMETHEUS_MULTIPROC_DIR", tempfile.mkdtemp(prefix="choicecast-prom-"))
+if "PROMETHEUS_MULTIPROC_DIR" not in os.environ:
+    os.environ["PROMETHEUS_MULTIPROC_DIR"] = tempfile.mkdtemp(prefix="choicecast-prom-")
+    atexit.register(shutil.rmtree, os.environ["PROMETHEUS_MULTIPROC_DIR"], ignore_errors=True)
 
 from benchmarks._doc import write_section  # noqa: E402
 from benchmarks.http_bench import MODEL, demo_store, situations  # noqa: E402
@@ -38,7 +42,9 @@ class _OtherContract:
 
 
 def main() -> None:
-    store = demo_store(Path(tempfile.mkdtemp(prefix="choicecast-shadow-")))
+    root = Path(tempfile.mkdtemp(prefix="choicecast-shadow-"))
+    atexit.register(shutil.rmtree, root, ignore_errors=True)
+    store = demo_store(root)
     app = create_app({"store": store, "poll_seconds": 0, "access_log": False})
     reg = app.extensions["choicecast.registry"]
     live = reg.get(MODEL, "v1").compiled
