@@ -6,7 +6,8 @@ C context variables (``.context``), K coefficients (``.coefficients.names``), M 
 Utility (Train 2009, sec. 2.5 and 3.1):  V_j = sum_t beta[k_t] * t(x[j_t, a_t]) * z[c_t].
 Terms of the form beta * x (identity, no context) are folded into a dense block
 ``linear`` (J, A); terms with no attribute and no context into ``constants`` (J,); every
-other term (a transform or a context interaction) is kept in ``general_terms``.
+other term (a transform or a context interaction) into a :class:`TermBlock`, evaluated for
+all alternatives at once.
 
 Train (2009) section and equation numbers are cited from memory.
 """
@@ -57,6 +58,75 @@ class TermArrays:
             transform=self.transform[mask],
             coefficient=self.coefficient[mask],
         )
+
+
+@dataclass(frozen=True, eq=False)
+class TermBlock:
+    """The general terms (a transform or a context variable) laid out by alternative: slot
+    (j, s) of the (J, S) grid holds the s-th such term of alternative j, S the most any
+    alternative has; empty slots hold 0 and weigh 0.  Per batch the features
+    F[n, j, s] = t(x[n, j, a]) * z[n, c] are gathered and transformed in a few whole-grid
+    operations, and V_j += sum_s weights[j, s] * F[n, j, s] is one stacked matrix-vector
+    product, so each alternative's utility sums only its own terms (an infinite or NaN
+    feature of one alternative never reaches another).  Arrays are flattened (J * S,)."""
+
+    slots: int
+    """S, the slots per alternative (0: the model has no general term)."""
+    cells: np.ndarray
+    """Flat attribute cell j * A + a of each slot (0 where the term has no attribute)."""
+    fill: np.ndarray
+    """The slot's value where it has no attribute: 1 for a context-only term, 0 if empty."""
+    unfilled: np.ndarray
+    """Slots without an attribute (their feature starts from ``fill``)."""
+    logged: np.ndarray | None
+    """Slots under log (None if none is)."""
+    logged1p: np.ndarray | None
+    """Slots under log1p (None if none is)."""
+    context: np.ndarray
+    """Context index multiplying each slot (0 where none does)."""
+    interacted: np.ndarray | None
+    """Slots multiplied by a context variable (None if none is)."""
+    weights: np.ndarray
+    """(J, S, 1) coefficient of each slot, 0 if empty."""
+
+
+def _term_block(terms: TermArrays, beta: np.ndarray, n_j: int, n_a: int) -> TermBlock:
+    by_alternative = [np.flatnonzero(terms.alternative == j) for j in range(n_j)]
+    n_s = max((len(t) for t in by_alternative), default=0)
+    grid = {name: np.zeros((n_j, n_s), dtype=dtype) for name, dtype in (
+        ("cells", np.intp), ("fill", np.float64), ("unfilled", bool), ("logged", bool),
+        ("logged1p", bool), ("context", np.intp), ("interacted", bool), ("weights", np.float64),
+    )}  # fmt: skip
+    grid["unfilled"][:] = True
+    for j, rows in enumerate(by_alternative):
+        for s, t in enumerate(rows):
+            a, c, code = terms.attribute[t], terms.context[t], terms.transform[t]
+            grid["weights"][j, s] = beta[terms.coefficient[t]]
+            if a == NONE:
+                grid["fill"][j, s] = 1.0
+            else:
+                grid["cells"][j, s], grid["unfilled"][j, s] = j * n_a + a, False
+                grid["logged"][j, s], grid["logged1p"][j, s] = code == LOG, code == LOG1P
+            if c != NONE:
+                grid["context"][j, s], grid["interacted"][j, s] = c, True
+    for g in grid.values():
+        g.setflags(write=False)
+    flat = {name: g.reshape(-1) for name, g in grid.items()}
+
+    def unless_empty(mask: np.ndarray) -> np.ndarray | None:
+        return mask if mask.any() else None
+
+    return TermBlock(
+        slots=n_s,
+        cells=flat["cells"],
+        fill=flat["fill"],
+        unfilled=flat["unfilled"],
+        logged=unless_empty(flat["logged"]),
+        logged1p=unless_empty(flat["logged1p"]),
+        context=flat["context"],
+        interacted=unless_empty(flat["interacted"]),
+        weights=grid["weights"][:, :, None],
+    )
 
 
 @dataclass(frozen=True, eq=False)
@@ -164,8 +234,8 @@ class CompiledModel:
     """(J, A): summed beta of identity, context-free attribute terms."""
     constants: np.ndarray
     """(J,): summed alternative-specific constants."""
-    general_terms: TermArrays
-    """Terms with a transform or a context variable, evaluated one by one over the batch."""
+    general: TermBlock
+    """Terms with a transform or a context variable, evaluated together over the batch."""
     required: np.ndarray
     """(J, A) bool: cells some term of the alternative uses."""
     required_context_mask: np.ndarray
@@ -348,7 +418,7 @@ def compile_model(spec: ModelSpec, coefficients: Coefficients) -> CompiledModel:
         terms=terms,
         linear=linear,
         constants=constants,
-        general_terms=general,
+        general=_term_block(general, beta, n_j, n_a),
         required=required,
         required_context_mask=required_context_mask,
         log_cells=log_cells,

@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from service.choice.batch import Batch
-from service.choice.compiled import IDENTITY, LOG, NONE, CompiledModel
+from service.choice.compiled import IDENTITY, LOG, NONE, CompiledModel, TermBlock
 
 CHUNK_BYTES = 2**21
 """Rows of the attribute array are multiplied in blocks of about this size, so that each
@@ -37,24 +37,46 @@ def transform_slope(code: int, x: np.ndarray) -> np.ndarray:
 
 
 def utilities(model: CompiledModel, batch: Batch) -> np.ndarray:
-    """V (J, N).  The dense linear block is a stacked matrix-vector product (one per
-    alternative) over cache-sized blocks of rows; transformed and context terms are added
-    one term at a time over the whole batch."""
+    """V (J, N), over cache-sized blocks of rows: the dense linear block is a stacked
+    matrix-vector product (one per alternative), the general terms are the features of
+    :class:`~service.choice.compiled.TermBlock` times their coefficients (another), and the
+    constants are added last."""
     x, z = batch.attributes, batch.context
     n_j, n = len(model.alternatives), batch.size
     v = np.empty((n_j, n))
-    weights = model.linear[:, :, None]
-    step = max(256, CHUNK_BYTES // max(1, x.shape[1] * x.shape[2] * x.itemsize))
-    for start in range(0, n, step):
-        stop = min(n, start + step)
-        np.matmul(x[start:stop].transpose(1, 0, 2), weights, out=v[:, start:stop, None])
-    v += model.constants[:, None]
-    beta = model.beta
+    weights, block = model.linear[:, :, None], model.general
+    row_bytes = x.itemsize * n_j * max(x.shape[2], block.slots)
+    step = max(256, CHUNK_BYTES // max(1, row_bytes))
     # Overflow gives an infinite or NaN utility, which choice_probabilities refuses by name.
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-        for term in model.general_terms.rows:
-            v[term[0]] += beta[term[4]] * _feature(term, x, z)
+        for start in range(0, n, step):
+            stop = min(n, start + step)
+            np.matmul(x[start:stop].transpose(1, 0, 2), weights, out=v[:, start:stop, None])
+            if block.slots:
+                v[:, start:stop] += _general_terms(block, x[start:stop], z[start:stop])
+    v += model.constants[:, None]
     return v
+
+
+def _general_terms(block: TermBlock, x: np.ndarray, z: np.ndarray) -> np.ndarray:
+    """sum_s weights[j, s] * F[n, j, s] (J, n) of a block of rows: F gathered from the cells,
+    filled where a slot has no attribute, transformed, times its context variable.  Outside
+    the domain (only in cells of an unavailable alternative, which check_batch leaves alone)
+    a feature is NaN/-inf, confined to that alternative's utility and masked by the caller."""
+    n = x.shape[0]
+    if block.unfilled.all():  # context-only terms (the model may have no attribute at all)
+        f = np.repeat(block.fill[None, :], n, axis=0)
+    else:
+        f = x.reshape(n, x.shape[1] * x.shape[2])[:, block.cells]
+        np.copyto(f, block.fill, where=block.unfilled)
+    if block.logged is not None:
+        np.log(f, out=f, where=block.logged)
+    if block.logged1p is not None:
+        np.log1p(f, out=f, where=block.logged1p)
+    if block.interacted is not None:
+        np.multiply(f, z[:, block.context], out=f, where=block.interacted)
+    features = f.reshape(n, -1, block.slots).transpose(1, 0, 2)
+    return np.matmul(features, block.weights)[:, :, 0]
 
 
 def _feature(

@@ -49,6 +49,46 @@ def test_unavailable_alternatives_may_carry_missing_values(mnl):
     np.testing.assert_allclose(score(mnl, gappy).probabilities, score(mnl, batch).probabilities)
 
 
+@pytest.mark.parametrize("bad", [0.0, -5.0, -2.0, np.inf, -np.inf, np.nan])
+def test_an_unavailable_alternative_outside_every_domain_leaves_the_others_alone(mnl, bad):
+    """Its cells (log time <= 0, log1p wait <= -1, infinite) give non-finite features that
+    must stay inside its own utility (common practice: an unavailable alternative takes no
+    part in the choice)."""
+    batch = commute_batch(mnl, 40, seed=4, p_unavailable=0.5)
+    x = batch.attributes.copy()
+    x[~batch.available] = bad
+    wild = Batch(x, batch.context, batch.available, batch.weights)
+    assert check_batch(mnl, wild).ok
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        result = score(mnl, wild)
+    np.testing.assert_array_equal(result.probabilities, score(mnl, batch).probabilities)
+
+
+def test_a_model_of_context_variables_only_is_a_logit_in_them():
+    """No attributes at all: V_b = asc + beta * income, so P_b = logistic(V_b - 0)
+    (Train 2009, sec. 3.1, from memory; scipy.special.expit as the reference)."""
+    spec = {
+        "name": "upgrade",
+        "family": "binary",
+        "alternatives": [{"id": "stay"}, {"id": "upgrade"}],
+        "attributes": [],
+        "context": [{"name": "income"}],
+        "utilities": {
+            "stay": [],
+            "upgrade": [
+                {"coefficient": "asc_upgrade"},
+                {"coefficient": "b_income", "context": "income"},
+            ],
+        },
+    }
+    model = model_from(spec, {"asc_upgrade": -0.7, "b_income": 0.02})
+    income = np.array([[10.0], [45.0], [120.0]])
+    batch = Batch(np.zeros((3, 2, 0)), income, np.ones((3, 2), bool), np.ones(3))
+    p = score(model, check_batch(model, batch).batch).probabilities
+    np.testing.assert_allclose(p[:, 1], special.expit(-0.7 + 0.02 * income[:, 0]), rtol=1e-14)
+
+
 def test_binary_logit_is_the_logistic_cdf_of_the_utility_difference():
     spec = {
         "name": "renew",
