@@ -28,6 +28,7 @@ from pathlib import Path
 REPO = Path(__file__).resolve().parents[1]
 REQUESTS = 300
 WARM_UP = 50
+NO_ASLR = ["setarch", "-R"] if shutil.which("setarch") else []
 
 
 def child(target: str, store: str, count: int) -> None:
@@ -52,9 +53,16 @@ def child(target: str, store: str, count: int) -> None:
 
 
 def instructions(target: str, store: str, count: int, tree: Path) -> int:
-    env = {**os.environ, "PYTHONHASHSEED": "0", "PYTHONPATH": str(tree)}
+    # One BLAS thread: idle OpenBLAS threads spin, and callgrind counts their spinning (it
+    # made counts differ by up to 7 % between runs).  No address randomisation either.
+    env = {
+        **os.environ,
+        "PYTHONHASHSEED": "0",
+        "PYTHONPATH": str(tree),
+        "OPENBLAS_NUM_THREADS": "1",
+    }
     run = subprocess.run(
-        ["valgrind", "--tool=callgrind", "--callgrind-out-file=/dev/null", sys.executable,
+        [*NO_ASLR, "valgrind", "--tool=callgrind", "--callgrind-out-file=/dev/null", sys.executable,
          str(Path(__file__).resolve()), "--child", target, store, str(count)],
         capture_output=True, text=True, env=env, cwd=tree, check=True,
     )  # fmt: skip
@@ -101,7 +109,8 @@ def main() -> None:
             "Command: `.venv/bin/python benchmarks/request_instructions.py"
             + (f" --baseline {args.baseline}" if args.baseline else "")
             + f"`. Instructions counted by callgrind over {REQUESTS} requests through Flask's "
-            "test client, minus a run of none (PYTHONHASHSEED=0); gunicorn's HTTP work, the "
+            "test client, minus a run of none (PYTHONHASHSEED=0, one BLAS thread, no address "
+            "randomisation); gunicorn's HTTP work, the "
             "same for every endpoint, is not counted.",
             "",
             "| request | instructions / request | vs empty endpoint |",

@@ -189,28 +189,28 @@ def check_batch(model: CompiledModel, batch: Batch, max_reported: int = MAX_REPO
 
 def _nothing_to_report(model: CompiledModel, batch: Batch) -> bool:
     """Whether a batch passes every check of :func:`check_batch`, judged in a few whole-batch
-    comparisons: each used value of an available alternative and each used context value
-    inside its :attr:`ValueChecks.accepted` bounds, an alternative available in every
-    situation, weights finite and >= 0 with one > 0 (then their sum is positive).  False
-    means there is something to report, and the full check finds and names it."""
+    comparisons: weights finite and >= 0 with one > 0 (then their sum is positive); every
+    used value (the used cells, then the used context variables, side by side) inside its
+    :attr:`ValueChecks.accepted` bounds wherever it is judged: a cell where its alternative
+    is available, a context value always; an alternative available in every situation.
+    False means there is something to report, and the full check finds and names it."""
     avail, w = batch.available, batch.weights
     lightest, heaviest = w.min(), w.max()  # NaN if any weight is NaN (then both tests fail)
-    if not (lightest >= 0 and 0 < heaviest <= LARGEST_FLOAT and avail.any(axis=1).all()):
+    if not (lightest >= 0 and 0 < heaviest <= LARGEST_FLOAT):
         return False
-    cells, variables = model.attribute_checks, model.context_checks
-    lo, hi = cells.accepted
-    values = batch.attributes[:, cells.alternative, cells.index]
+    x, n = batch.attributes, batch.size
+    values = x.reshape(n, x.shape[1] * x.shape[2])[:, model.used_cells]
+    if len(model.context_checks):
+        values = np.concatenate((values, batch.context[:, model.context_checks.index]), axis=1)
+    lo, hi = model.accepted_values
     inside = values >= lo
     inside &= values <= hi
-    if not (inside >= avail[:, cells.alternative]).all():  # inside wherever available
+    if avail.all():
+        return bool(inside.all())
+    if not avail.any(axis=1).all():
         return False
-    if not len(variables):
-        return True
-    lo, hi = variables.accepted
-    values = batch.context[:, variables.index]
-    inside = values >= lo
-    inside &= values <= hi
-    return bool(inside.all())
+    judged = np.concatenate((avail, np.ones((n, 1), dtype=bool)), axis=1)[:, model.judged_by]
+    return bool((inside >= judged).all())
 
 
 def _clipped(batch: Batch, clips: list[tuple[ValueChecks, np.ndarray, bool]]) -> Batch:

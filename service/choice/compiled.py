@@ -158,9 +158,7 @@ class ValueChecks:
         finite (lo >= -max float, hi <= max float; NaN fails every comparison)."""
         lo = np.maximum(np.maximum(self.low, np.nextafter(self.domain, np.inf)), -LARGEST_FLOAT)
         hi = np.minimum(self.high, LARGEST_FLOAT)
-        lo.setflags(write=False)
-        hi.setflags(write=False)
-        return lo, hi
+        return _read_only(lo), _read_only(hi)
 
     @property
     def bounded(self) -> np.ndarray:
@@ -279,6 +277,28 @@ class CompiledModel:
         return x, z
 
     @cached_property
+    def used_cells(self) -> np.ndarray:
+        """(R,) flat position j * A + a of each checked cell in a row of the attributes
+        reshaped (N, J * A), ordered as ``attribute_checks``."""
+        return _read_only(self.attribute_checks.alternative * len(self.attributes)
+                          + self.attribute_checks.index)  # fmt: skip
+
+    @cached_property
+    def accepted_values(self) -> tuple[np.ndarray, np.ndarray]:
+        """(R + R_c,) :attr:`ValueChecks.accepted` bounds of the checked cells, then of the
+        checked context variables."""
+        pairs = (self.attribute_checks.accepted, self.context_checks.accepted)
+        lo, hi = (np.concatenate([p[i] for p in pairs]) for i in (0, 1))
+        return _read_only(lo), _read_only(hi)
+
+    @cached_property
+    def judged_by(self) -> np.ndarray:
+        """(R + R_c,) the alternative whose availability decides whether a checked value is
+        judged, J (always judged) for a context variable; ordered as ``accepted_values``."""
+        always = np.full(len(self.context_checks), len(self.alternatives), dtype=np.intp)
+        return _read_only(np.concatenate((self.attribute_checks.alternative, always)))
+
+    @cached_property
     def input_contract(self) -> tuple:
         """What decoding and :func:`check_batch` make of a request for this model: the axes,
         the range policy and every value check.  Two versions with equal contracts decode
@@ -319,6 +339,11 @@ class CompiledModel:
 
     def attribute_index(self, attribute: str) -> int:
         return self.attributes.index(attribute)
+
+
+def _read_only(a: np.ndarray) -> np.ndarray:
+    a.setflags(write=False)
+    return a
 
 
 def compile_model(spec: ModelSpec, coefficients: Coefficients) -> CompiledModel:
