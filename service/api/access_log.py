@@ -77,7 +77,7 @@ def install(app: Flask, log_requests: bool) -> None:
     def _start() -> None:
         ctx = g._get_current_object()  # type: ignore[attr-defined]
         ctx.started = time.perf_counter()
-        offered = request.headers.get("X-Request-ID", "")
+        offered = request.environ.get("HTTP_X_REQUEST_ID", "")  # the header, unparsed
         ctx.request_id = offered if REQUEST_ID.match(offered) else new_request_id()
 
     @app.after_request
