@@ -43,7 +43,7 @@ K = 6
 def make_model(j: int, nested: bool = False, interactions: bool = False):
     """An invented retail-basket model: J stores, K generic attributes, J-1 constants;
     ``interactions`` adds a basket-size context variable on the price of every store and on
-    each constant (2J - 1 terms evaluated one by one, beside the dense linear block)."""
+    each constant (2J - 1 general terms, evaluated as one block beside the dense linear block)."""
     alts = [f"store{i}" for i in range(j)]
     attrs = [f"x{k}" for k in range(K)]
     attrs[0] = "price"
@@ -251,7 +251,7 @@ def run(quick: bool) -> str:
         ("+ probability std errors (delta method)", with_cov, ScoreOptions(std_errors=True)),
         ("nested logit, default", nested, ScoreOptions()),
         ("nested logit + elasticities wrt price", nested, ScoreOptions(elasticities=("price",))),
-        ("context interactions (9 terms one by one), default", interacting, ScoreOptions()),
+        ("context interactions (9 general terms), default", interacting, ScoreOptions()),
     ]
     times = best_of_interleaved(
         [
