@@ -198,8 +198,8 @@ def _nothing_to_report(model: CompiledModel, batch: Batch) -> bool:
     lightest, heaviest = w.min(), w.max()  # NaN if any weight is NaN (then both tests fail)
     if not (lightest >= 0 and 0 < heaviest <= LARGEST_FLOAT):
         return False
-    x, n = batch.attributes, batch.size
-    values = x.reshape(n, x.shape[1] * x.shape[2])[:, model.used_cells]
+    cells = model.attribute_checks
+    values = batch.attributes[:, cells.alternative, cells.index]
     if len(model.context_checks):
         values = np.concatenate((values, batch.context[:, model.context_checks.index]), axis=1)
     lo, hi = model.accepted_values
@@ -209,7 +209,8 @@ def _nothing_to_report(model: CompiledModel, batch: Batch) -> bool:
         return bool(inside.all())
     if not avail.any(axis=1).all():
         return False
-    judged = np.concatenate((avail, np.ones((n, 1), dtype=bool)), axis=1)[:, model.judged_by]
+    always = np.ones((batch.size, 1), dtype=bool)
+    judged = np.concatenate((avail, always), axis=1)[:, model.judged_by]
     return bool((inside >= judged).all())
 
 

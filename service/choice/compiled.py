@@ -277,13 +277,6 @@ class CompiledModel:
         return x, z
 
     @cached_property
-    def used_cells(self) -> np.ndarray:
-        """(R,) flat position j * A + a of each checked cell in a row of the attributes
-        reshaped (N, J * A), ordered as ``attribute_checks``."""
-        return _read_only(self.attribute_checks.alternative * len(self.attributes)
-                          + self.attribute_checks.index)  # fmt: skip
-
-    @cached_property
     def accepted_values(self) -> tuple[np.ndarray, np.ndarray]:
         """(R + R_c,) :attr:`ValueChecks.accepted` bounds of the checked cells, then of the
         checked context variables."""

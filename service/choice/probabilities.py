@@ -9,7 +9,6 @@ Train (2009) section and equation numbers are cited from memory.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -70,8 +69,7 @@ def choice_probabilities(model: CompiledModel, v: np.ndarray, available: np.ndar
     """
     np.copyto(v, -np.inf, where=~available)
     top = v.max(axis=0)
-    # A sum of finite maxima is finite unless it overflows (then the long way decides).
-    if not math.isfinite(top.sum()) and not np.isfinite(top).all():
+    if not np.isfinite(top).all():
         bad = np.flatnonzero(~np.isfinite(top))
         listed = [_not_finite(model, v, available, int(n)) for n in bad[:MAX_LISTED]]
         raise UtilityNotFinite(listed, int(bad.size))

@@ -219,6 +219,24 @@ def test_extreme_utilities_give_exact_zero_one_probabilities_without_warnings(fa
         assert np.all(np.isfinite(e.elasticity)) and np.all(np.isfinite(e.marginal_effect))
 
 
+@pytest.mark.parametrize("family", ["multinomial", "nested"])
+def test_utilities_near_the_largest_float_score_without_warnings(family):
+    """Finite utilities of 1e307 in many situations: any sum across situations would
+    overflow, so nothing may sum them (warnings are errors here).  The probability of a
+    dominant alternative is 1 and the logsum its utility (common practice: log-sum-exp)."""
+    model = direct_model(family)
+    n = 40
+    u = np.tile([1e307, 0.0, -1e307, 1.0], (n, 1))
+    batch = Batch(u[:, :, None], np.zeros((n, 0)), np.ones((n, 4), bool), np.ones(n))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        result = score(model, check_batch(model, batch).batch)
+    np.testing.assert_array_equal(result.probabilities, np.tile([1.0, 0, 0, 0], (n, 1)))
+    if family == "multinomial":
+        np.testing.assert_array_equal(result.logsum, np.full(n, 1e307))
+    assert np.isfinite(result.logsum).all()
+
+
 def test_gumbel_simulation_of_the_random_utility_model_matches():
     # Source: simulation of the random utility model U = V + e with iid standard Gumbel e
     # (variance pi^2/6): choice frequencies estimate P, the mean of max U estimates

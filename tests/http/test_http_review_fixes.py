@@ -84,6 +84,20 @@ def test_overflow_is_located_in_rows_columns_and_arrow(client):
     assert_overflow_named(refusal(arrow), "situation[s1]")
 
 
+def test_large_finite_results_across_many_situations_are_served(client):
+    """Times of -1.7e308 minutes (outside the estimation range: warned, not refused) give
+    ferry and taxi utilities near 7e306: every logsum is finite, but their sum over 30
+    situations is not, so no check may add them up (the suite turns warnings into errors,
+    which would make this a 500)."""
+    rows = [situation(i, ferry__time=-1.7e308, taxi__time=-1.7e308) for i in range(30)]
+    r = client.post(
+        SCORE.format(model="overflow"), json={"situations": rows, "return": {"logsum": True}}
+    )
+    assert r.status_code == 200, r.get_data(as_text=True)
+    logsums = [s["logsum"] for s in r.get_json()["situations"]]
+    assert all(6e306 < v < 8e306 for v in logsums)
+
+
 def test_overflow_of_a_scenario_base_names_the_request_situation(client):
     url = SCENARIOS.format(model="overflow")
     variants = [{"name": "v", "remove": ["ferry"]}]
