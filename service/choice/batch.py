@@ -11,7 +11,7 @@ import numpy as np
 
 from service.choice.compiled import CompiledModel
 
-RECORD_KEYS = ("id", "attributes", "context", "available", "weight")
+RECORD_KEYS = frozenset(("id", "attributes", "context", "available", "weight"))
 
 
 @dataclass(frozen=True)
@@ -57,14 +57,13 @@ class Batch:
         x_unset, z_unset = model.unset_values
         x = x_unset[None].repeat(n, axis=0)
         z = z_unset[None].repeat(n, axis=0)
+        cells = x.reshape(n, x_unset.size)  # a view of x: row i, flat cell j * A + a
         available = np.empty((n, n_j), dtype=bool)
         available.fill(True)
         weights = np.empty(n)
         weights.fill(1.0)
-        j_of, a_of, c_of = model.positions
-        # Values of cells and context variables no term uses are type-checked, then ignored
-        # (left 0), as every request form does.
-        used_cells, used_context = model.required.tolist(), model.required_context_mask.tolist()
+        j_of = model.positions[0]
+        cell_of, context_of = model.record_slots
         problems: list[BatchProblem] = []
 
         def bad(i: int, message: str, *path: str) -> None:
@@ -74,38 +73,42 @@ class Batch:
             if not _is_mapping(rec):
                 bad(i, "must be an object")
                 continue
-            for key in rec:
-                if key not in RECORD_KEYS:
-                    bad(i, "unknown field", str(key))
+            if not RECORD_KEYS.issuperset(rec):
+                for key in rec:
+                    if key not in RECORD_KEYS:
+                        bad(i, "unknown field", str(key))
             attrs = rec.get("attributes", {})
             if not _is_mapping(attrs):
                 bad(i, "must be an object keyed by alternative", "attributes")
                 attrs = {}
             for alt, values in attrs.items():
-                if alt not in j_of:
+                slots = cell_of.get(alt)
+                if slots is None:
                     bad(i, "not an alternative of the model", "attributes", str(alt))
                     continue
                 if not _is_mapping(values):
                     bad(i, "must be an object keyed by attribute", "attributes", alt)
                     continue
                 for name, value in values.items():
-                    if name not in a_of:
+                    k = slots.get(name)
+                    if k is None:
                         bad(i, "not an attribute of the model", "attributes", alt, str(name))
-                    elif (v := _number(value)) is None:
+                    elif (v := value if type(value) is float else _number(value)) is None:
                         bad(i, "must be a number", "attributes", alt, name)
-                    elif used_cells[j_of[alt]][a_of[name]]:
-                        x[i, j_of[alt], a_of[name]] = v
+                    elif k >= 0:  # values of cells no term uses are ignored (left 0)
+                        cells[i, k] = v
             ctx = rec.get("context", {})
             if not _is_mapping(ctx):
                 bad(i, "must be an object keyed by context variable", "context")
                 ctx = {}
             for name, value in ctx.items():
-                if name not in c_of:
+                c = context_of.get(name)
+                if c is None:
                     bad(i, "not a context variable of the model", "context", str(name))
-                elif (v := _number(value)) is None:
+                elif (v := value if type(value) is float else _number(value)) is None:
                     bad(i, "must be a number", "context", name)
-                elif used_context[c_of[name]]:
-                    z[i, c_of[name]] = v
+                elif c >= 0:
+                    z[i, c] = v
             avail = rec.get("available", {})
             if not _is_mapping(avail):
                 bad(i, "must be an object keyed by alternative", "available")

@@ -267,6 +267,24 @@ class CompiledModel:
         )  # type: ignore[return-value]
 
     @cached_property
+    def record_slots(self) -> tuple[dict[str, dict[str, int]], dict[str, int]]:
+        """Where a record's values go, by name (built once): alternative -> attribute ->
+        flat cell j * A + a of the attributes reshaped (N, J * A), and context variable ->
+        index; -1 for a known name no term uses (its value is type-checked, then ignored)."""
+        n_a = len(self.attributes)
+        cells = {
+            alt: {
+                attr: j * n_a + a if self.required[j, a] else -1
+                for a, attr in enumerate(self.attributes)
+            }
+            for j, alt in enumerate(self.alternatives)
+        }
+        context = {
+            name: c if self.required_context_mask[c] else -1 for c, name in enumerate(self.context)
+        }
+        return cells, context
+
+    @cached_property
     def unset_values(self) -> tuple[np.ndarray, np.ndarray]:
         """(J, A) and (C,) read-only fill of a situation before its values are set: NaN
         where the model uses the value (missing until given), 0 elsewhere."""
