@@ -88,11 +88,11 @@ def read_json() -> Any:
 
 
 def read_body() -> bytes:
-    """The whole body.  werkzeug stops reading a chunked body at max_content_length without
-    saying so; one more byte read then raises its 413 instead of passing on a truncated body."""
+    """The whole body.  werkzeug stops reading a chunked body at max_content_length (the
+    app's ``max_body_bytes``) without saying so; one more byte read then raises its 413
+    instead of passing on a truncated body."""
     raw = request.get_data(cache=False)
-    limit = request.max_content_length
-    if limit is not None and len(raw) >= limit:
+    if len(raw) >= settings().max_body_bytes:
         request.stream.read(1)
     return raw
 
