@@ -33,7 +33,7 @@ from .codecs.decoded import Decoded
 from .codecs.ipc_limits import decoded_body_size, dictionary_expansion
 from .codecs.results import Outputs, clear_negative_zeros, outputs_from, require_finite
 from .codecs.rows import decode_rows
-from .context import settings
+from .config import Settings
 from .problems import (
     ApiError,
     FieldError,
@@ -73,12 +73,12 @@ def dumps(body: Any) -> str:
     return _ENCODER.encode(body)
 
 
-def read_json() -> Any:
+def read_json(max_body_bytes: int) -> Any:
     if request.mimetype != JSON:
         raise unsupported_media_type(
             f"send {JSON} or {ARROW}, not {request.mimetype or 'no content type'!r}"
         )
-    raw = read_body()
+    raw = read_body(max_body_bytes)
     try:
         return json.loads(raw)
     except (ValueError, RecursionError) as exc:
@@ -87,12 +87,12 @@ def read_json() -> Any:
         ) from None
 
 
-def read_body() -> bytes:
+def read_body(max_body_bytes: int) -> bytes:
     """The whole body.  werkzeug stops reading a chunked body at max_content_length (the
     app's ``max_body_bytes``) without saying so; one more byte read then raises its 413
     instead of passing on a truncated body."""
     raw = request.get_data(cache=False)
-    if len(raw) >= settings().max_body_bytes:
+    if len(raw) >= max_body_bytes:
         request.stream.read(1)
     return raw
 
@@ -116,17 +116,17 @@ def check_size(n: int, limit: int) -> None:
         )
 
 
-def parse_score_request() -> ParsedRequest:
+def parse_score_request(config: Settings) -> ParsedRequest:
     """The body as rows, columns or an Arrow table, with the options (400/413/415 problems)."""
     if request.mimetype == ARROW:
-        return _parse_arrow()
-    data = read_json()
-    check_size(situation_count(data), settings().max_situations)
+        return _parse_arrow(config.max_body_bytes)
+    data = read_json(config.max_body_bytes)
+    check_size(situation_count(data), config.max_situations)
     loaded = SCORE_REQUEST.load(data) if isinstance(data, dict) else _not_object()
     outputs = outputs_from(loaded["outputs"]) if loaded.get("outputs") else DEFAULT_OUTPUTS
     if "situations" in loaded:
         return ParsedRequest("rows", loaded["situations"], outputs, loaded.get("routing_key"))
-    check_size(column_length(loaded["columns"]), settings().max_situations)
+    check_size(column_length(loaded["columns"]), config.max_situations)
     return ParsedRequest("columns", loaded["columns"], outputs, loaded.get("routing_key"))
 
 
@@ -134,7 +134,7 @@ def _not_object() -> Any:
     raise bad_request("the body must be a JSON object", [FieldError("$", "must be an object")])
 
 
-def _parse_arrow() -> ParsedRequest:
+def _parse_arrow(limit: int) -> ParsedRequest:
     import pyarrow as pa
 
     try:
@@ -143,8 +143,7 @@ def _parse_arrow() -> ParsedRequest:
         raise bad_request(
             "the query parameters are not valid", marshmallow_errors(exc.messages, "query")
         ) from None
-    raw = read_body()
-    limit = settings().max_body_bytes
+    raw = read_body(limit)
     try:
         decoded_size = decoded_body_size(raw)
         if decoded_size <= limit:
@@ -266,10 +265,10 @@ def score_options(outputs: Outputs) -> ScoreOptions:
 
 
 def run_score(
-    model: Any, decoded: Decoded, outputs: Outputs, form: str
+    model: Any, decoded: Decoded, outputs: Outputs, form: str, max_work: int
 ) -> tuple[ScoreResult, BatchCheck, list[FieldError]]:
     """Check then score; every refusal is a 422 naming the fields (413 over ``max_work``)."""
-    check_work(decoded.batch.size, model, outputs, form, settings().max_work)
+    check_work(decoded.batch.size, model, outputs, form, max_work)
     check = check_batch(model, decoded.batch)
     if check.problems or decoded.problems:
         raise refusal(decoded, check)

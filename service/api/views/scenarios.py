@@ -98,13 +98,16 @@ def _check_work(n: int, model: Any, variants: int, limit: int) -> None:
 def scenarios(name: str) -> Response:
     auth.require(tokens(), "score")
     g.model = name
-    data = read_json()
+    config = settings()
+    data = read_json(config.max_body_bytes)
     if not isinstance(data, dict):
         raise bad_request("the body must be a JSON object", [FieldError("$", "must be an object")])
-    limit = settings().max_situations
+    limit = config.max_situations
     check_size(situation_count(data), limit)
     body = SCENARIO_REQUEST.load(data)
-    decision, generation, _ = choose(name, body.get("version"), body.get("routing_key"))
+    decision, generation, _ = choose(
+        name, body.get("version"), body.get("routing_key"), shadow_on=False
+    )
     loaded = load(name, decision.version)
     g.version, g.decision, g.generation = loaded.version, decision.decision, generation
     model = loaded.compiled
@@ -115,7 +118,7 @@ def scenarios(name: str) -> Response:
         decoded = decode_columns(model, body["columns"])
     check_size(decoded.batch.size, limit)
     g.situations = decoded.batch.size
-    _check_work(decoded.batch.size, model, len(body["variants"]), settings().max_work)
+    _check_work(decoded.batch.size, model, len(body["variants"]), config.max_work)
     check = check_batch(model, decoded.batch)
     if decoded.problems or check.problems:
         raise refusal(decoded, check)

@@ -39,7 +39,7 @@ def score_pinned(name: str, version: str) -> Response:
 
 
 def choose(
-    name: str, pinned: str | None, key: str | None
+    name: str, pinned: str | None, key: str | None, shadow_on: bool
 ) -> tuple[Decision, int | None, str | None]:
     """(decision, routing generation, shadow version to score afterwards)."""
     reg = registry()
@@ -58,23 +58,25 @@ def choose(
             f"(/v1/models/{name}/versions/{{version}}/score)",
         )
     decision = route(name, routing.live, key)
-    shadow = routing.shadow if settings().shadow and routing.shadow != decision.version else None
+    shadow = routing.shadow if shadow_on and routing.shadow != decision.version else None
     return decision, generation, shadow
 
 
 def _score(name: str, pinned: str | None) -> Response:
     auth.require(tokens(), "score")
-    g.model = name
-    parsed: ParsedRequest = parse_score_request()
-    decision, generation, shadow = choose(name, pinned, parsed.routing_key)
+    # Resolved once: every lookup through Flask's context proxies costs about a microsecond.
+    config, state = settings(), g._get_current_object()  # type: ignore[attr-defined]
+    state.model = name
+    parsed: ParsedRequest = parse_score_request(config)
+    decision, generation, shadow = choose(name, pinned, parsed.routing_key, config.shadow)
     loaded = load(name, decision.version)
-    g.version, g.decision, g.generation = loaded.version, decision.decision, generation
+    state.version, state.decision, state.generation = loaded.version, decision.decision, generation
     model = loaded.compiled
     decoded = decode(parsed, model)
-    check_size(decoded.batch.size, settings().max_situations)
-    g.situations = decoded.batch.size
+    check_size(decoded.batch.size, config.max_situations)
+    state.situations = decoded.batch.size
     outputs = parsed.outputs
-    result, check, warnings = run_score(model, decoded, outputs, parsed.form)
+    result, check, warnings = run_score(model, decoded, outputs, parsed.form, config.max_work)
 
     alternatives = list(model.alternatives)
     routing_info = {"decision": decision.decision, "generation": generation}
