@@ -13,7 +13,7 @@ from service.choice.spec import NAME_PATTERN, spec_to_dict
 from .. import auth
 from ..context import registry, tokens
 from ..problems import not_found, unavailable
-from ..registry import ModelRouting, UnknownModel, UnknownVersion, VersionUnavailable
+from ..registry import ModelRouting, Registry, UnknownModel, UnknownVersion, VersionUnavailable
 
 blueprint = Blueprint("models", __name__)
 
@@ -57,7 +57,7 @@ def summary(name: str) -> dict[str, Any]:
     if routing is not None:
         # Spec summary of the version with the largest live weight.
         version = max(routing.live, key=lambda v: (routing.live[v], v))
-        loaded = load(name, version)
+        loaded = load(reg, name, version)
         spec = spec_to_dict(loaded.spec)
         out.update(
             family=spec["family"],
@@ -86,7 +86,7 @@ def show_model(name: str) -> Response:
 def show_version(name: str, version: str) -> Response:
     auth.require(tokens(), "score")
     g.model, g.version = name, version
-    loaded = load(name, version)
+    loaded = load(registry(), name, version)
     coefficients = loaded.coefficients
     rows = []
     for i, coef in enumerate(coefficients.names):
@@ -119,9 +119,8 @@ def show_version(name: str, version: str) -> Response:
     )
 
 
-def load(name: str, version: str):
+def load(reg: Registry, name: str, version: str):
     """The compiled version, or a 404/503 problem."""
-    reg = registry()
     if name not in reg.known_models():
         raise not_found(f"no model named {name!r}")
     if not NAME_PATTERN.match(version):

@@ -19,7 +19,7 @@ from service.choice.probabilities import UtilityNotFinite
 from .. import auth
 from ..codecs.columns import column_length, decode_columns
 from ..codecs.rows import decode_rows
-from ..context import settings, tokens
+from ..context import registry, settings, tokens
 from ..problems import FieldError, bad_request, too_large, unprocessable
 from ..schemas import ScenarioRequestSchema
 from ..scoring_flow import check_size, dumps, not_finite, read_json, refusal, situation_count
@@ -105,10 +105,11 @@ def scenarios(name: str) -> Response:
     limit = config.max_situations
     check_size(situation_count(data), limit)
     body = SCENARIO_REQUEST.load(data)
+    reg = registry()
     decision, generation, _ = choose(
-        name, body.get("version"), body.get("routing_key"), shadow_on=False
+        reg, name, body.get("version"), body.get("routing_key"), shadow_on=False
     )
-    loaded = load(name, decision.version)
+    loaded = load(reg, name, decision.version)
     g.version, g.decision, g.generation = loaded.version, decision.decision, generation
     model = loaded.compiled
     if "situations" in body:

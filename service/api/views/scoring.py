@@ -13,6 +13,7 @@ from ..codecs.arrow import encode_arrow
 from ..codecs.results import aggregate_json, encode_columns, encode_rows
 from ..context import registry, settings, tokens
 from ..problems import ApiError, not_found
+from ..registry import Registry
 from ..routing import Decision, route
 from ..scoring_flow import (
     ParsedRequest,
@@ -39,10 +40,9 @@ def score_pinned(name: str, version: str) -> Response:
 
 
 def choose(
-    name: str, pinned: str | None, key: str | None, shadow_on: bool
+    reg: Registry, name: str, pinned: str | None, key: str | None, shadow_on: bool
 ) -> tuple[Decision, int | None, str | None]:
     """(decision, routing generation, shadow version to score afterwards)."""
-    reg = registry()
     if name not in reg.known_models():
         raise not_found(f"no model named {name!r}")
     routing = reg.routing(name)
@@ -65,11 +65,11 @@ def choose(
 def _score(name: str, pinned: str | None) -> Response:
     auth.require(tokens(), "score")
     # Resolved once: every lookup through Flask's context proxies costs about a microsecond.
-    config, state = settings(), g._get_current_object()  # type: ignore[attr-defined]
+    config, reg, state = settings(), registry(), g._get_current_object()  # type: ignore[attr-defined]
     state.model = name
     parsed: ParsedRequest = parse_score_request(config)
-    decision, generation, shadow = choose(name, pinned, parsed.routing_key, config.shadow)
-    loaded = load(name, decision.version)
+    decision, generation, shadow = choose(reg, name, pinned, parsed.routing_key, config.shadow)
+    loaded = load(reg, name, decision.version)
     state.version, state.decision, state.generation = loaded.version, decision.decision, generation
     model = loaded.compiled
     decoded = decode(parsed, model)
@@ -125,7 +125,6 @@ def _score(name: str, pinned: str | None) -> Response:
         metrics.child(metrics.OUT_OF_RANGE, name, loaded.version).inc(check.warning_count)
     if shadow is not None and result.probabilities is not None:
         live_p, checked = result.probabilities, check.batch
-        reg = registry()
 
         def _shadow() -> None:
             shadow_score(reg, name, loaded.version, shadow, parsed, model, checked, live_p)
