@@ -235,7 +235,11 @@ _FLOAT, _BOOL = np.dtype(np.float64), np.dtype(np.bool_)
 
 def _shape_problems(model: CompiledModel, batch: Batch) -> tuple[BatchProblem, ...]:
     n_j, n_a, n_c = len(model.alternatives), len(model.attributes), len(model.context)
-    n = np.shape(batch.attributes)[0] if np.ndim(batch.attributes) else -1
+    x = batch.attributes
+    if isinstance(x, np.ndarray):
+        n = x.shape[0] if x.ndim else -1
+    else:  # a list or a scalar: its shape as NumPy would read it
+        n = np.shape(x)[0] if np.ndim(x) else -1
     expect = (
         ("attributes", (n, n_j, n_a), _FLOAT),
         ("context", (n, n_c), _FLOAT),
