@@ -47,12 +47,13 @@ ROUNDS = 4
 """The one-situation comparison alternates the two servers this many times."""
 NOTE_ONE_SITUATION = (
     "The one-situation bar is not met (or is met only with the client's share of the cores: "
-    "the server CPU ratio is below 0.7). What a one-row request still pays is fixed work per "
-    "request, spread thinly: about 12 NumPy calls in `check_batch` (a batch with nothing to "
-    "report is accepted in a few whole-batch comparisons) and 25 in `score`, each a few "
-    "microseconds on one-row arrays once the caches are cold; the envelope schema and the "
-    "record decoder; Flask's and werkzeug's request and response objects; four metric "
-    "updates in multiprocess mode; and the access line."
+    "the server CPU ratio is below 0.7). Beyond the empty endpoint, a one-row request pays "
+    "fixed work spread over many small steps, none more than about a quarter of the extra: the "
+    "envelope schema and the record decoder; about 11 NumPy operations in `check_batch` and "
+    "35 in `score` (a third of them views), each about a microsecond on one-row arrays and "
+    "more once the caches are cold; encoding the answer; five metric updates in "
+    "multiprocess mode; the access line; Flask's and werkzeug's request and response objects. "
+    '"Instructions per request" below counts the same work without the noise of timing.'
 )
 
 # The empty endpoint the service is compared with (served by the same gunicorn config).
