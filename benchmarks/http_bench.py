@@ -48,12 +48,14 @@ ROUNDS = 4
 NOTE_ONE_SITUATION = (
     "The one-situation bar is not met (or is met only with the client's share of the cores: "
     "the server CPU ratio is below 0.7). Beyond the empty endpoint, a one-row request pays "
-    "fixed work spread over many small steps, none more than about a quarter of the extra: the "
-    "envelope schema and the record decoder; about 11 NumPy operations in `check_batch` and "
-    "35 in `score` (a third of them views), each about a microsecond on one-row arrays and "
-    "more once the caches are cold; encoding the answer; five metric updates in "
-    "multiprocess mode; the access line; Flask's and werkzeug's request and response objects. "
-    '"Instructions per request" below counts the same work without the noise of timing.'
+    "fixed work over many small steps. The largest is checking and scoring, about 40 % of the "
+    "extra under gunicorn: about 11 NumPy operations in `check_batch` and 35 in `score` (a "
+    "third of them views), each about a microsecond on one-row arrays when warm and several "
+    "once a loaded machine has cooled the caches. Then parsing (the envelope schema), "
+    "decoding the record, encoding the answer, five metric updates in multiprocess mode and "
+    "the access line. "
+    '"Where a one-situation request\'s time goes" below measures each step under gunicorn, '
+    'and "Instructions per request" counts the work without the noise of timing.'
 )
 
 # The empty endpoint the service is compared with (served by the same gunicorn config).
