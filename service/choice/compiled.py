@@ -78,6 +78,9 @@ class TermBlock:
     """The slot's value where it has no attribute: 1 for a context-only term, 0 if empty."""
     unfilled: np.ndarray
     """Slots without an attribute (their feature starts from ``fill``)."""
+    gathered: bool
+    """Whether any slot reads an attribute cell (a model may have context-only terms, or no
+    attribute at all)."""
     logged: np.ndarray | None
     """Slots under log (None if none is)."""
     logged1p: np.ndarray | None
@@ -121,6 +124,7 @@ def _term_block(terms: TermArrays, beta: np.ndarray, n_j: int, n_a: int) -> Term
         cells=flat["cells"],
         fill=flat["fill"],
         unfilled=flat["unfilled"],
+        gathered=not flat["unfilled"].all(),
         logged=unless_empty(flat["logged"]),
         logged1p=unless_empty(flat["logged1p"]),
         context=flat["context"],

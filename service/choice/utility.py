@@ -64,11 +64,11 @@ def _general_terms(block: TermBlock, x: np.ndarray, z: np.ndarray) -> np.ndarray
     the domain (only in cells of an unavailable alternative, which check_batch leaves alone)
     a feature is NaN/-inf, confined to that alternative's utility and masked by the caller."""
     n = x.shape[0]
-    if block.unfilled.all():  # context-only terms (the model may have no attribute at all)
-        f = np.repeat(block.fill[None, :], n, axis=0)
-    else:
+    if block.gathered:
         f = x.reshape(n, x.shape[1] * x.shape[2])[:, block.cells]
         np.copyto(f, block.fill, where=block.unfilled)
+    else:
+        f = np.repeat(block.fill[None, :], n, axis=0)
     if block.logged is not None:
         np.log(f, out=f, where=block.logged)
     if block.logged1p is not None:
