@@ -54,12 +54,19 @@ _FIELDS: dict[str, type] = {
 }
 
 
+_OPTIONAL = frozenset(name for name, value in vars(Settings()).items() if value is None)
+"""Settings whose absence (None) means something: no store URI given, no endpoint, no file."""
+
+
 def _convert(name: str, kind: type, raw: Any) -> Any:
     var = ENV_PREFIX + name.upper()
     if not isinstance(raw, str):
         if kind is tuple:
             return tuple(raw)
-        return kind(raw)
+        if kind in (int, float) and not isinstance(raw, bool):
+            raw = repr(raw)  # checked below as the same text in a variable would be
+        else:
+            return kind(raw)
     text = raw.strip()
     try:
         if kind is bool:
@@ -96,5 +103,7 @@ def load_settings(overrides: Mapping[str, Any] | None = None) -> Settings:
         key = name.lower().removeprefix(ENV_PREFIX.lower())
         if key not in _FIELDS:
             raise ConfigError(f"unknown setting {name!r}")
+        if raw is None and key not in _OPTIONAL:
+            raise ConfigError(f"setting {name!r} cannot be None (leave it out for the default)")
         values[key] = _convert(key, _FIELDS[key], raw) if raw is not None else None
     return Settings(**values)

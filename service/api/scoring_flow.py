@@ -73,12 +73,12 @@ def dumps(body: Any) -> str:
     return _ENCODER.encode(body)
 
 
-def read_json(max_body_bytes: int) -> Any:
+def read_json() -> Any:
     if request.mimetype != JSON:
         raise unsupported_media_type(
             f"send {JSON} or {ARROW}, not {request.mimetype or 'no content type'!r}"
         )
-    raw = read_body(max_body_bytes)
+    raw = read_body()
     try:
         return json.loads(raw)
     except (ValueError, RecursionError) as exc:
@@ -87,13 +87,15 @@ def read_json(max_body_bytes: int) -> Any:
         ) from None
 
 
-def read_body(max_body_bytes: int) -> bytes:
-    """The whole body.  werkzeug stops reading a chunked body at max_content_length (the
-    app's ``max_body_bytes``) without saying so; one more byte read then raises its 413
-    instead of passing on a truncated body."""
+def read_body() -> bytes:
+    """The whole body.  A body that declares its length is refused by werkzeug (413) when it
+    is over max_content_length; a chunked one is cut there without a word, so one more byte
+    read then raises the 413 instead of passing on a truncated body."""
     raw = request.get_data(cache=False)
-    if len(raw) >= max_body_bytes:
-        request.stream.read(1)
+    if request.content_length is None:
+        limit = request.max_content_length
+        if limit is not None and len(raw) >= limit:
+            request.stream.read(1)
     return raw
 
 
@@ -120,7 +122,7 @@ def parse_score_request(config: Settings) -> ParsedRequest:
     """The body as rows, columns or an Arrow table, with the options (400/413/415 problems)."""
     if request.mimetype == ARROW:
         return _parse_arrow(config.max_body_bytes)
-    data = read_json(config.max_body_bytes)
+    data = read_json()
     check_size(situation_count(data), config.max_situations)
     loaded = SCORE_REQUEST.load(data) if isinstance(data, dict) else _not_object()
     outputs = outputs_from(loaded["outputs"]) if loaded.get("outputs") else DEFAULT_OUTPUTS
@@ -143,7 +145,7 @@ def _parse_arrow(limit: int) -> ParsedRequest:
         raise bad_request(
             "the query parameters are not valid", marshmallow_errors(exc.messages, "query")
         ) from None
-    raw = read_body(limit)
+    raw = read_body()
     try:
         decoded_size = decoded_body_size(raw)
         if decoded_size <= limit:

@@ -73,9 +73,9 @@ class Batch:
             if not _is_mapping(rec):
                 bad(i, "must be an object")
                 continue
-            if not RECORD_KEYS.issuperset(rec):
+            if not _known_keys(rec):
                 for key in rec:
-                    if key not in RECORD_KEYS:
+                    if not (isinstance(key, str) and key in RECORD_KEYS):
                         bad(i, "unknown field", str(key))
             attrs = rec.get("attributes", {})
             if not _is_mapping(attrs):
@@ -126,6 +126,15 @@ class Batch:
                     bad(i, "must be a number", "weight")
                 weights[i] = np.nan if w is None else w
         return cls(attributes=x, context=z, available=available, weights=weights), tuple(problems)
+
+
+def _known_keys(record: Mapping) -> bool:
+    """Whether every key of the record is a record field (one set test; a mapping with an
+    unhashable key is not, and its keys are then named one by one)."""
+    try:
+        return RECORD_KEYS.issuperset(record)
+    except TypeError:
+        return False
 
 
 def _is_mapping(value: Any) -> bool:

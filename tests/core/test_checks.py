@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from collections.abc import Mapping
+
 import numpy as np
 import pytest
 
@@ -354,3 +356,29 @@ def test_weights_whose_sum_overflows_are_still_a_positive_sum(mnl):
     batch.attributes[0, 0, 0] = 99.0  # car fare above the range [0, 30]: a warning
     check = check_batch(mnl, batch)
     assert check.ok and check.warning_count == 1
+
+
+class _Pairs(Mapping):
+    """A mapping over key-value pairs, whose keys need not be hashable."""
+
+    def __init__(self, pairs):
+        self.pairs = pairs
+
+    def __getitem__(self, key):
+        for k, v in self.pairs:
+            if k == key:
+                return v
+        raise KeyError(key)
+
+    def __iter__(self):
+        return iter(k for k, _ in self.pairs)
+
+    def __len__(self):
+        return len(self.pairs)
+
+
+def test_a_record_with_an_unhashable_key_is_decoded_with_that_key_named(mnl):
+    record = _Pairs([(["x"], 1), ("weight", 2.0)])
+    batch, problems = Batch.from_records(mnl, [record])
+    assert [(p.field, p.message) for p in problems] == [(("['x']",), "unknown field")]
+    assert batch.weights.tolist() == [2.0]

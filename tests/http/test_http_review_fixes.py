@@ -3,6 +3,8 @@ bound the work a request may cause; results never show a negative zero."""
 
 from __future__ import annotations
 
+import io
+import json
 import re
 from pathlib import Path
 
@@ -96,6 +98,36 @@ def test_large_finite_results_across_many_situations_are_served(client):
     assert r.status_code == 200, r.get_data(as_text=True)
     logsums = [s["logsum"] for s in r.get_json()["situations"]]
     assert all(6e306 < v < 8e306 for v in logsums)
+
+
+def chunked_post(client, path: str, body: bytes):
+    return client.open(
+        path,
+        method="POST",
+        input_stream=io.BytesIO(body),
+        content_type="application/json",
+        headers={"Transfer-Encoding": "chunked"},
+        environ_overrides={"wsgi.input_terminated": True},
+    )
+
+
+def test_a_chunked_body_over_the_apps_limit_is_413_whatever_set_the_limit(tmp_path):
+    """werkzeug cuts a chunked body at the app's max_content_length without a word; the
+    service must answer 413, not parse the truncated JSON, for the limit Flask enforces."""
+    app = create_app({"store": seed_store(tmp_path / "store"), "poll_seconds": 0,
+                      "access_log": False, "max_body_bytes": 1_000_000})  # fmt: skip
+    app.config["MAX_CONTENT_LENGTH"] = 1000
+    body = json.dumps({"situations": [situation(0)], "pad": "x" * 5000}).encode()
+    r = chunked_post(app.test_client(), SCORE.format(model="harbour"), body)
+    assert r.status_code == 413, r.get_data(as_text=True)
+
+
+@pytest.mark.parametrize("name", ["max_body_bytes", "max_situations", "max_work", "poll_seconds"])
+def test_a_setting_given_as_none_is_refused_by_name(tmp_path, name):
+    from service.api.config import ConfigError
+
+    with pytest.raises(ConfigError, match=name):
+        create_app({"store": seed_store(tmp_path / "store"), name: None})
 
 
 def test_overflow_of_a_scenario_base_names_the_request_situation(client):

@@ -15,7 +15,7 @@ from flask import Blueprint, Response, g, jsonify, request
 from model_store import KEEP_SHADOW
 
 from .. import auth
-from ..context import registry, settings, tokens
+from ..context import registry, tokens
 from ..problems import ApiError, FieldError, bad_request, not_found, unavailable, unprocessable
 from ..schemas import PromoteSchema, RollbackSchema, RoutingChangeSchema
 from ..scoring_flow import read_json
@@ -132,7 +132,7 @@ def rollback(name: str) -> Response:
 
 
 def _object() -> dict[str, Any]:
-    data = read_json(settings().max_body_bytes)
+    data = read_json()
     if not isinstance(data, dict):
         raise bad_request("the body must be a JSON object", [FieldError("$", "must be an object")])
     return data

@@ -99,7 +99,7 @@ def scenarios(name: str) -> Response:
     auth.require(tokens(), "score")
     g.model = name
     config = settings()
-    data = read_json(config.max_body_bytes)
+    data = read_json()
     if not isinstance(data, dict):
         raise bad_request("the body must be a JSON object", [FieldError("$", "must be an object")])
     limit = config.max_situations
