@@ -3,17 +3,19 @@
     .venv/bin/python benchmarks/request_stages.py [--rounds 6] [--seconds 2]
 
 Serves the empty Flask JSON endpoint and one copy of the service per stage
-(benchmarks/staged_app.py: the scoring view stopped after that stage), all with the project's
-gunicorn config, 2 sync workers each, on 127.0.0.1.  They take turns under the same load (8
-client threads, the routed one-situation request of benchmarks/http_bench.py); each figure is
-the median over rounds of the server's CPU time per request, and each step's cost is the
-difference from the stage before it.  Unlike an in-process count, this includes what the
-cold caches of a loaded 2-core machine add.  Writes the "stages" section of docs/benchmarks.md.
+(benchmarks/staged_app.py: the scoring view stopped after that stage), each as
+``choicecast serve`` would (the project's gunicorn config, 2 sync workers, its own metrics
+directory) on 127.0.0.1.  All take turns in every round under the same load (8 client
+threads, the routed one-situation request of benchmarks/http_bench.py).  A step's cost is the
+difference between its stage and the one before, taken within each round and then the median
+over rounds.  Unlike an in-process count, this includes what the cold caches of a loaded
+2-core machine add.  Writes the "stages" section of docs/benchmarks.md.
 """
 
 from __future__ import annotations
 
 import argparse
+import itertools
 import json
 import os
 import statistics
@@ -36,22 +38,32 @@ from http_bench import (  # noqa: E402
     situations,
     worker_pids,
 )
-from staged_app import NEXT_CALL  # noqa: E402
+
+from service.api.server import environment  # noqa: E402
 
 THREADS = 8
 EMPTY = "empty Flask JSON endpoint"
+STOP_BEFORE = {
+    "stopped before parsing (hooks, auth, request metrics, access line)": "parse_score_request",
+    "+ parse (body, JSON, envelope schema)": "choose",
+    "+ routing and version lookup": "decode",
+    "+ decode": "run_score",
+    "+ check and score": "encode_rows",
+    "+ encode the answer": "dumps",
+}
+"""Stage -> the call of the scoring view (views/scoring.py) that its copy stops before."""
+FULL = "+ the rest: JSON text, response, headers, scoring metrics (the full request)"
 
 
-def staged_server(store: str, stage: str, port: int):
-    env = {
-        **os.environ,
-        "CHOICECAST_STORE": store,
-        "CHOICECAST_POLL_SECONDS": "5",
-        "CHOICECAST_BENCH_STAGE": stage,
-        "PYTHONPATH": os.pathsep.join([str(REPO / "benchmarks"), str(REPO)]),
-    }
+def staged_server(store: str, stop_before: str | None, port: int):
+    """gunicorn serving benchmarks/staged_app.py in the environment ``choicecast serve``
+    builds (a fresh metrics directory, removed when the server exits)."""
     for key in ("CHOICECAST_SCORE_TOKENS", "CHOICECAST_ADMIN_TOKENS", "CHOICECAST_TOKENS_FILE"):
-        env.pop(key, None)
+        os.environ.pop(key, None)
+    os.environ.pop("PROMETHEUS_MULTIPROC_DIR", None)
+    env = environment(store, {"poll_seconds": 5})
+    env["CHOICECAST_BENCH_STOP_BEFORE"] = stop_before or ""
+    env["PYTHONPATH"] = os.pathsep.join([str(REPO / "benchmarks"), str(REPO)])
     argv = [sys.executable, "-m", "gunicorn", "--config", str(REPO / "deploy" / "gunicorn.conf.py"),
             "--bind", f"127.0.0.1:{port}", "--workers", "2", "staged_app:app"]  # fmt: skip
     return serve(argv, port, "/readyz", env)
@@ -64,7 +76,7 @@ def main() -> None:
     args = parser.parse_args()
     one = json.dumps({"situations": situations(1)}).encode()
     score = f"/v1/models/{MODEL}/score"
-    stages = [*NEXT_CALL, "full"]
+    stages = [*STOP_BEFORE, FULL]
     cpu: dict[str, list[float]] = {name: [] for name in (EMPTY, *stages)}
     with tempfile.TemporaryDirectory(prefix="choicecast-stages-") as tmp, ExitStack() as stack:
         store = demo_store(Path(tmp))
@@ -73,7 +85,8 @@ def main() -> None:
         servers[EMPTY] = (port, "/empty", stack.enter_context(empty_server(port)))
         for name in stages:
             port = free_port()
-            servers[name] = (port, score, stack.enter_context(staged_server(store, name, port)))
+            server = staged_server(store, STOP_BEFORE.get(name), port)
+            servers[name] = (port, score, stack.enter_context(server))
         for port, path, _ in servers.values():
             load(port, path, one, 1.5, THREADS)  # warm-up: every worker booted
         pids = {name: [m, *worker_pids(m)] for name, (_, _, m) in servers.items()}
@@ -85,34 +98,41 @@ def main() -> None:
                 if result["errors"]:
                     raise RuntimeError(f"{name}: {result['errors']} errors")
                 cpu[name].append(result["cpu_us"])
-    median = {name: statistics.median(v) for name, v in cpu.items()}
-    rows, before = [], median[EMPTY]
-    for name in (EMPTY, *stages):
-        added = "" if name == EMPTY else f"{median[name] - before:+.0f}"
-        spread = f"{min(cpu[name]):.0f}-{max(cpu[name]):.0f}"
-        rows.append(f"| {name} | {median[name]:.0f} | {spread} | {added} |")
-        before = median[name]
-    extra = median["full"] - median[EMPTY]
+    names = [EMPTY, *stages]
+    rows = [f"| {EMPTY} | {statistics.median(cpu[EMPTY]):.0f} | | |"]
+    for before, name in itertools.pairwise(names):
+        # Paired within each round: the copies ran one after another under the same conditions.
+        added = [b - a for a, b in zip(cpu[before], cpu[name], strict=True)]
+        low, high = min(added), max(added)
+        noise = " (within the noise)" if low <= 0 <= high else ""
+        rows.append(
+            f"| {name} | {statistics.median(cpu[name]):.0f} | {statistics.median(added):+.0f}"
+            f"{noise} | {low:+.0f} to {high:+.0f} |"
+        )
+    extra = [b - a for a, b in zip(cpu[EMPTY], cpu[FULL], strict=True)]
+    ratio = statistics.median(a / b for a, b in zip(cpu[EMPTY], cpu[FULL], strict=True))
     text = "\n".join(
         [
             "## Where a one-situation request's time goes",
             "",
             f"Command: `.venv/bin/python benchmarks/request_stages.py --rounds {args.rounds}`. "
-            "Server CPU time per request (user + system, gunicorn master and 2 sync workers), "
-            f"median of {args.rounds} rounds of {args.seconds:g} s at {THREADS} client threads; "
-            "each service row is a copy of the service whose scoring view stops after that "
-            "step (benchmarks/staged_app.py), so a row's last column is what its step adds. "
-            "The empty endpoint reads, parses and answers the body itself; the first service "
-            "row does neither, so its difference sets the service's hooks, request metrics and "
-            "access line against that work.",
+            "Server CPU time per request (user + system, gunicorn master and 2 sync workers) "
+            f"at {THREADS} client threads, {args.rounds} rounds of {args.seconds:g} s in which "
+            "every server takes a turn. Each service row is a copy of the service that stops "
+            "after that step (benchmarks/staged_app.py); a step's cost is its row minus the "
+            "row before, within each round, as the median and range over rounds. The empty "
+            "endpoint reads, parses and answers the body itself; the first service row does "
+            "neither, so its difference sets the service's hooks, auth, request metrics and "
+            "access line against that work. Stopping costs a few microseconds that the last "
+            "row does not pay, so the last step is understated by as much.",
             "",
-            "| stage reached | server CPU us / request | range over rounds | added |",
+            "| stage reached | server CPU us / request (median) | step adds (median) | "
+            "step adds (range) |",
             "| --- | ---: | ---: | ---: |",
             *rows,
             "",
-            f"The full request costs {extra:.0f} us more than the empty endpoint "
-            f"({median[EMPTY] / median['full']:.2f} of its throughput with the cores to "
-            "themselves).",
+            f"The full request costs {statistics.median(extra):.0f} us more than the empty "
+            f"endpoint ({ratio:.2f} of its throughput with the cores to themselves).",
         ]
     )
     print(text)
