@@ -48,7 +48,7 @@ ROUNDS = 4
 NOTE_ONE_SITUATION = (
     "The one-situation bar is not met (or is met only with the client's share of the cores: "
     "the server CPU ratio is below 0.7). Beyond the empty endpoint, a one-row request pays "
-    "fixed work over many small steps. The largest is checking and scoring, about 40 % of the "
+    "fixed work over many small steps. The largest is checking and scoring, about a third of the "
     "extra under gunicorn: about 11 NumPy operations in `check_batch` and 35 in `score` (a "
     "third of them views), each about a microsecond on one-row arrays when warm and several "
     "once a loaded machine has cooled the caches. Then parsing (the envelope schema), "
