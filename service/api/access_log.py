@@ -37,7 +37,7 @@ class JsonFormatter(logging.Formatter):
 
     def format(self, record: logging.LogRecord) -> str:
         if isinstance(record.msg, dict):
-            return json.dumps(record.msg, separators=(",", ":"), default=str)
+            return _LINE.encode(record.msg)
         entry = {
             "ts": round(record.created, 3),
             "level": record.levelname,

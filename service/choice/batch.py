@@ -93,7 +93,7 @@ class Batch:
                     k = slots.get(name)
                     if k is None:
                         bad(i, "not an attribute of the model", "attributes", alt, str(name))
-                    elif (v := value if type(value) is float else _number(value)) is None:
+                    elif (v := _number(value)) is None:
                         bad(i, "must be a number", "attributes", alt, name)
                     elif k >= 0:  # values of cells no term uses are ignored (left 0)
                         cells[i, k] = v
@@ -105,7 +105,7 @@ class Batch:
                 c = context_of.get(name)
                 if c is None:
                     bad(i, "not a context variable of the model", "context", str(name))
-                elif (v := value if type(value) is float else _number(value)) is None:
+                elif (v := _number(value)) is None:
                     bad(i, "must be a number", "context", name)
                 elif c >= 0:
                     z[i, c] = v
