@@ -94,6 +94,12 @@ def main() -> None:
             f"{statistics.median(rps):.2f} ({min(rps):.2f} to {max(rps):.2f}) | "
             f"{statistics.median(cpu):.2f} ({min(cpu):.2f} to {max(cpu):.2f}) |"
         )
+    floor, service = runs[NAMES[1]], runs[NAMES[2]]
+    of_floor = statistics.median(s["rps"] / f["rps"] for s, f in zip(service, floor, strict=True))
+    work = statistics.median(
+        (s["cpu_us"] - e["cpu_us"]) / (f["cpu_us"] - e["cpu_us"])
+        for s, f, e in zip(service, floor, empty, strict=True)
+    )
     text = "\n".join(
         [
             "## How close a one-situation request comes to its floor",
@@ -112,6 +118,10 @@ def main() -> None:
             "throughput ratio | CPU ratio |",
             "| --- | ---: | ---: | ---: | ---: | ---: |",
             *rows,
+            "",
+            f"The service sustains {of_floor:.2f} of the floor's throughput; its server CPU "
+            f"beyond the empty endpoint's is {work:.1f} times the floor's. The floor's ratio "
+            "is the most any service that does the whole job could reach on this machine.",
         ]
     )
     print(text)
