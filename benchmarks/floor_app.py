@@ -72,9 +72,10 @@ app = Flask("floor")
 
 @app.before_request
 def _start() -> None:
-    g.started = time.perf_counter()
+    state = g._get_current_object()  # type: ignore[attr-defined]
+    state.started = time.perf_counter()
     offered = request.environ.get("HTTP_X_REQUEST_ID", "")
-    g.request_id = offered or new_request_id()
+    state.request_id = offered or new_request_id()
 
 
 @app.post(f"/v1/models/{MODEL}/score")
@@ -133,19 +134,20 @@ def score() -> Response:
 
 @app.after_request
 def _finish(response: Response) -> Response:
-    elapsed = time.perf_counter() - g.started
-    response.headers["X-Request-ID"] = g.request_id
-    rule = request.url_rule.rule if request.url_rule is not None else "unmatched"
-    version = g.get("version", "")
+    state, req = g._get_current_object(), request._get_current_object()  # type: ignore[attr-defined]
+    elapsed = time.perf_counter() - state.started
+    response.headers["X-Request-ID"] = state.request_id
+    rule = req.url_rule.rule if req.url_rule is not None else "unmatched"
+    version = state.get("version", "")
     metrics.child(metrics.REQUESTS, MODEL, version, rule, str(response.status_code)).inc()
     metrics.child(metrics.LATENCY, rule).observe(elapsed)
     write_access_line(
         {
             "ts": round(time.time(), 3),
             "type": "access",
-            "request_id": g.request_id,
-            "method": request.method,
-            "path": request.path,
+            "request_id": state.request_id,
+            "method": req.method,
+            "path": req.path,
             "route": rule,
             "status": response.status_code,
             "duration_ms": round(elapsed * 1000, 3),
