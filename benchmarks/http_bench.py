@@ -57,8 +57,9 @@ NOTE_ONE_SITUATION = (
     '"Where a one-situation request\'s time goes" below measures each step under gunicorn, '
     'and "Instructions per request" counts the work without the noise of timing. '
     '"How close a one-situation request comes to its floor" serves an app that does only '
-    "the steps every scoring request requires, each in its cheapest form: it reaches about "
-    "0.7 itself, so the bar leaves no room for the rest of the job."
+    "the steps every scoring request requires, each in its cheapest form: it reaches only "
+    "about 0.7 to 0.9 itself (0.6 to 0.7 by server CPU), so the bar leaves little or no room "
+    "for the rest of the job."
 )
 
 # The empty endpoint the service is compared with (served by the same gunicorn config).

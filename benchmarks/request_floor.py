@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import statistics
 import sys
 import tempfile
@@ -33,25 +32,13 @@ from http_bench import (  # noqa: E402
     empty_server,
     free_port,
     load,
-    serve,
     situations,
     worker_pids,
 )
-from request_stages import staged_server  # noqa: E402
-
-from service.api.server import environment  # noqa: E402
+from request_stages import bench_server, staged_server  # noqa: E402
 
 THREADS = 8
 NAMES = ("empty Flask JSON endpoint", "floor (benchmarks/floor_app.py)", "service")
-
-
-def floor_server(store: str, port: int):
-    os.environ.pop("PROMETHEUS_MULTIPROC_DIR", None)
-    env = environment(store, {"poll_seconds": 5})
-    env["PYTHONPATH"] = os.pathsep.join([str(REPO / "benchmarks"), str(REPO)])
-    argv = [sys.executable, "-m", "gunicorn", "--config", str(REPO / "deploy" / "gunicorn.conf.py"),
-            "--bind", f"127.0.0.1:{port}", "--workers", "2", "floor_app:app"]  # fmt: skip
-    return serve(argv, port, "/readyz", env)
 
 
 def main() -> None:
@@ -67,7 +54,7 @@ def main() -> None:
         ports = [free_port() for _ in NAMES]
         masters = [
             stack.enter_context(empty_server(ports[0])),
-            stack.enter_context(floor_server(store, ports[1])),
+            stack.enter_context(bench_server(store, ports[1], "floor_app:app")),
             stack.enter_context(staged_server(store, None, ports[2])),
         ]
         paths = ["/empty", path, path]
@@ -120,8 +107,8 @@ def main() -> None:
             *rows,
             "",
             f"The service sustains {of_floor:.2f} of the floor's throughput; its server CPU "
-            f"beyond the empty endpoint's is {work:.1f} times the floor's. The floor's ratio "
-            "is the most any service that does the whole job could reach on this machine.",
+            f"beyond the empty endpoint's is {work:.1f} times the floor's. The floor's ratios "
+            "bounds what a service that does the whole job could reach on this machine.",
         ]
     )
     print(text)

@@ -55,18 +55,25 @@ STOP_BEFORE = {
 FULL = "+ the rest: JSON text, response, headers, scoring metrics (the full request)"
 
 
-def staged_server(store: str, stop_before: str | None, port: int):
-    """gunicorn serving benchmarks/staged_app.py in the environment ``choicecast serve``
-    builds (a fresh metrics directory, removed when the server exits)."""
+def bench_server(store: str, port: int, app: str, env: dict[str, str] | None = None):
+    """gunicorn serving ``app`` (``module:object`` under benchmarks/) in the environment
+    ``choicecast serve`` builds (a fresh metrics directory, removed when the server exits),
+    plus ``env``."""
     for key in ("CHOICECAST_SCORE_TOKENS", "CHOICECAST_ADMIN_TOKENS", "CHOICECAST_TOKENS_FILE"):
         os.environ.pop(key, None)
     os.environ.pop("PROMETHEUS_MULTIPROC_DIR", None)
-    env = environment(store, {"poll_seconds": 5})
-    env["CHOICECAST_BENCH_STOP_BEFORE"] = stop_before or ""
-    env["PYTHONPATH"] = os.pathsep.join([str(REPO / "benchmarks"), str(REPO)])
+    full = {**environment(store, {"poll_seconds": 5}), **(env or {})}
+    full["PYTHONPATH"] = os.pathsep.join([str(REPO / "benchmarks"), str(REPO)])
     argv = [sys.executable, "-m", "gunicorn", "--config", str(REPO / "deploy" / "gunicorn.conf.py"),
-            "--bind", f"127.0.0.1:{port}", "--workers", "2", "staged_app:app"]  # fmt: skip
-    return serve(argv, port, "/readyz", env)
+            "--bind", f"127.0.0.1:{port}", "--workers", "2", app]  # fmt: skip
+    return serve(argv, port, "/readyz", full)
+
+
+def staged_server(store: str, stop_before: str | None, port: int):
+    """The service stopped before ``stop_before`` (benchmarks/staged_app.py; None: whole)."""
+    return bench_server(
+        store, port, "staged_app:app", {"CHOICECAST_BENCH_STOP_BEFORE": stop_before or ""}
+    )
 
 
 def main() -> None:
