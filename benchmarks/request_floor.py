@@ -25,16 +25,8 @@ from pathlib import Path
 REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO / "benchmarks"))
 
+import http_bench as hb  # noqa: E402
 from _doc import write_section  # noqa: E402
-from http_bench import (  # noqa: E402
-    MODEL,
-    demo_store,
-    empty_server,
-    free_port,
-    load,
-    situations,
-    worker_pids,
-)
 from request_stages import bench_server, staged_server  # noqa: E402
 
 THREADS = 8
@@ -46,25 +38,25 @@ def main() -> None:
     parser.add_argument("--rounds", type=int, default=6)
     parser.add_argument("--seconds", type=float, default=2.0, help="load per server and round")
     args = parser.parse_args()
-    one = json.dumps({"situations": situations(1)}).encode()
-    path = f"/v1/models/{MODEL}/score"
+    one = json.dumps({"situations": hb.situations(1)}).encode()
+    path = f"/v1/models/{hb.MODEL}/score"
     runs: dict[str, list[dict]] = {name: [] for name in NAMES}
     with tempfile.TemporaryDirectory(prefix="choicecast-floor-") as tmp, ExitStack() as stack:
-        store = demo_store(Path(tmp))
-        ports = [free_port() for _ in NAMES]
+        store = hb.demo_store(Path(tmp))
+        ports = [hb.free_port() for _ in NAMES]
         masters = [
-            stack.enter_context(empty_server(ports[0])),
+            stack.enter_context(hb.empty_server(ports[0])),
             stack.enter_context(bench_server(store, ports[1], "floor_app:app")),
             stack.enter_context(staged_server(store, None, ports[2])),
         ]
         paths = ["/empty", path, path]
         for port, p in zip(ports, paths, strict=True):
-            load(port, p, one, 1.5, THREADS)  # warm-up: every worker booted
-        pids = [[m, *worker_pids(m)] for m in masters]
+            hb.load(port, p, one, 1.5, THREADS)  # warm-up: every worker booted
+        pids = [[m, *hb.worker_pids(m)] for m in masters]
         order = list(range(len(NAMES)))
         for i in range(args.rounds):
             for k in order if i % 2 == 0 else order[::-1]:
-                result = load(ports[k], paths[k], one, args.seconds, THREADS, pids[k])
+                result = hb.load(ports[k], paths[k], one, args.seconds, THREADS, pids[k])
                 if result["errors"]:
                     raise RuntimeError(f"{NAMES[k]}: {result['errors']} errors")
                 runs[NAMES[k]].append(result)
@@ -108,7 +100,7 @@ def main() -> None:
             "",
             f"The service sustains {of_floor:.2f} of the floor's throughput; its server CPU "
             f"beyond the empty endpoint's is {work:.1f} times the floor's. The floor's ratios "
-            "bounds what a service that does the whole job could reach on this machine.",
+            "bound what a service that does the whole job could reach on this machine.",
         ]
     )
     print(text)
