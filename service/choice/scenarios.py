@@ -16,7 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from service.choice.aggregate import shares
+from service.choice.aggregate import shares, weighted_mean
 from service.choice.batch import Batch, BatchProblem
 from service.choice.checks import BatchCheck, check_batch
 from service.choice.compiled import CompiledModel
@@ -122,8 +122,9 @@ def run_scenarios(
         dcs = total = mean = None
         if alpha is not None:
             dcs = (out.logsum - base_out.logsum) / alpha
-            total = float(dcs @ w)
-            mean = total / float(w.sum())
+            with np.errstate(over="ignore"):  # inf beyond the largest float, as revenue_total
+                total = float(dcs @ w)
+            mean = weighted_mean(dcs, w)
         d_rev = None
         if out.revenue_total is not None and base_out.revenue_total is not None:
             d_rev = out.revenue_total - base_out.revenue_total
@@ -170,7 +171,8 @@ def _outcome(
         priced = available & model.required[:, a][:, None]
         cost = np.where(priced, batch.attributes[:, :, a].T, 0.0)
         revenue = (p * cost).sum(axis=0)
-        revenue_total = float(revenue @ batch.weights)
+        with np.errstate(over="ignore"):  # a total beyond the largest float is inf, refused
+            revenue_total = float(revenue @ batch.weights)  # by the caller as not finite
     return Outcome(
         name=name,
         shares=shares(p, batch.weights),

@@ -98,7 +98,7 @@ def score(
     validate_options(model, options)
     if batch.size == 0:
         raise ScoringError([Problem("situations", "the batch has no situations")])
-    if options.aggregate and not batch.weights.sum() > 0:
+    if options.aggregate and not batch.weights.max() > 0:  # checked weights are >= 0
         raise ScoringError([Problem("weights", "aggregation needs a positive sum of weights")])
     alpha = marginal_utility_of_money(model, batch) if options.surplus else None
     available = batch.available.T
