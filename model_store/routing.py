@@ -50,8 +50,11 @@ class RoutingState:
 
     def shares(self) -> dict[str, float]:
         """Live weights normalised to sum to 1 (the traffic share of each version)."""
-        total = sum(self.live.values())
-        return {v: w / total for v, w in self.live.items()} if total > 0 else {}
+        top = max(self.live.values(), default=0.0)
+        if not top > 0:
+            return {}
+        total = sum(w / top for w in self.live.values())  # w / top: the sum cannot overflow
+        return {v: w / top / total for v, w in self.live.items()}
 
     def versions(self) -> tuple[str, ...]:
         """Every version this state needs loaded: the live ones, then the shadow."""
@@ -142,8 +145,14 @@ def check_change(live: Mapping[str, float], shadow: str | None, reason: str) -> 
         if not math.isfinite(w) or w < 0:
             raise RoutingError(f"live.{version}: weight must be finite and >= 0, not {weight}")
         weights[version] = w
-    if sum(weights.values()) <= 0:
+    total = sum(weights.values())
+    if total <= 0:
         raise RoutingError("live: the weights must sum to more than 0")
+    if not math.isfinite(total):
+        raise RoutingError(
+            "live: the weights sum to more than the largest number; give them as shares "
+            "(for example 90 and 10)"
+        )
     if shadow is not None and [v for v, w in weights.items() if w > 0] == [shadow]:
         raise RoutingError(
             f"shadow: {shadow!r} already takes 100% of live traffic; shadowing it is pointless"

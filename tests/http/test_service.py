@@ -253,3 +253,9 @@ def test_version_detail_gives_willingness_to_pay(client):
         assert wtp[name]["value"] == pytest.approx(-bk / bc, rel=1e-12)
         assert wtp[name]["std_error"] == pytest.approx(se, rel=1e-12)
     assert "b_fare" not in wtp
+
+
+def test_routing_weights_near_the_largest_float_split_traffic_by_their_proportions():
+    """Relative weights: 1e308 and 1e308 route like 1 and 1 (neither version starves)."""
+    weights = {"v1": 1e308, "v2": 1e308}
+    assert [pick(weights, u) for u in (0.0, 0.49, 0.5, 0.99)] == ["v1", "v1", "v2", "v2"]

@@ -115,6 +115,7 @@ def test_two_operators_from_the_same_generation_one_wins(ferry: Store):
         ({"v1": float("nan")}, None, r"live\.v1: weight must be finite"),
         ({"v1": float("inf")}, None, r"live\.v1: weight must be finite"),
         ({"v1": 0, "v2": 0}, None, "sum to more than 0"),
+        ({"v1": 1e308, "v2": 1e308}, None, "sum to more than the largest number"),
         ({"v1": "lots"}, None, r"live\.v1: weight must be a number"),
         ({"v1": 1, "v2": 0}, "v1", "already takes 100%"),
         ({"v7": 1}, None, r"live\.v7: version 'v7' of 'ferry' is not published"),
@@ -223,3 +224,11 @@ def test_concurrent_changes_in_threads_one_wins_per_generation(tmp_path):
     assert outcomes.count("won") == len(history)
     assert [s.generation for s in history] == list(range(1, len(history) + 1))
     assert all(s.previous_generation == s.generation - 1 for s in history)
+
+
+def test_shares_of_weights_near_the_largest_float_are_their_proportions():
+    """A state recorded before sums were checked still gives shares summing to 1."""
+    from model_store.routing import RoutingState
+
+    state = RoutingState("ferry", 3, live={"v1": 1e308, "v2": 1e308, "v3": 0.0})
+    assert state.shares() == {"v1": 0.5, "v2": 0.5, "v3": 0.0}
