@@ -10,6 +10,7 @@ the tests load real responses through them.
 from __future__ import annotations
 
 import math
+import sys
 from typing import Any
 
 import numpy as np
@@ -53,8 +54,35 @@ def _array(value: list) -> np.ndarray | None:
         return None
 
 
+def _number_problem(value: Any) -> str | None:
+    """Why one item of a number column is not a JSON number (None: it is one)."""
+    if type(value) is float:
+        return None
+    if type(value) is int:
+        return None if abs(value) <= sys.float_info.max else "is too large for a number"
+    return "must be a number (not a string, boolean, null or list)"
+
+
+def _bool_problem(value: Any) -> str | None:
+    return None if type(value) is bool else "must be true or false"
+
+
+def _item_errors(value: list, problem: Any) -> dict[int, list[str]]:
+    """The first offending items by index (marshmallow's form: paths end in ``[i]``); only
+    on the error path, so a valid column never pays a per-value Python test."""
+    errors: dict[int, list[str]] = {}
+    for i, item in enumerate(value):
+        message = problem(item)
+        if message is not None:
+            errors[i] = [message]
+            if len(errors) >= 20:
+                break
+    return errors
+
+
 class NumberColumn(fields.Field):
-    """A list of JSON numbers, loaded as one float64 array (vectorised type check)."""
+    """A list of JSON numbers, loaded as one float64 array (vectorised type check; booleans,
+    which NumPy would read as 1 and 0 beside numbers, are found by their type)."""
 
     def __init__(self, **kwargs: Any):
         kwargs.setdefault("metadata", {}).update(type="array", items={"type": "number"})
@@ -64,8 +92,11 @@ class NumberColumn(fields.Field):
         if not isinstance(value, list):
             raise ValidationError("must be a list of numbers")
         arr = _array(value) if value else np.zeros(0)
-        if arr is None or arr.ndim != 1 or arr.dtype.kind not in "iuf":
-            raise ValidationError("must be a list of numbers (no strings, booleans or nulls)")
+        if arr is None or arr.ndim != 1 or arr.dtype.kind not in "iuf" or bool in map(type, value):
+            errors = _item_errors(value, _number_problem)
+            if errors:
+                raise ValidationError(errors)
+            arr = np.array(value, dtype=np.float64)  # integers beyond int64, all numbers
         return arr.astype(np.float64, copy=False)
 
 
@@ -79,7 +110,7 @@ class BoolColumn(fields.Field):
             raise ValidationError("must be a list of true/false")
         arr = _array(value) if value else np.zeros(0, dtype=bool)
         if arr is None or arr.ndim != 1 or arr.dtype.kind != "b":
-            raise ValidationError("must be a list of true/false")
+            raise ValidationError(_item_errors(value, _bool_problem))
         return arr
 
 

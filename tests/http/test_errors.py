@@ -56,11 +56,16 @@ def test_malformed_json_is_400(client, text):
         ({"situations": [situation(0)], "return": {"logsum": "yes"}}, ["$.return.logsum"]),
         ({"situations": [situation(0)], "return": {"elasticities": "fare"}}, ["$.return.elasticities"]),
         ({"situations": [situation(0)], "routing_key": ""}, ["$.routing_key"]),
-        ({"columns": {"attributes": {"ferry": {"fare": ["3"]}}}}, ["$.columns.attributes.ferry.fare"]),
-        ({"columns": {"available": {"ferry": [1]}}}, ["$.columns.available.ferry"]),
+        ({"columns": {"attributes": {"ferry": {"fare": ["3"]}}}}, ["$.columns.attributes.ferry.fare[0]"]),
+        ({"columns": {"available": {"ferry": [1]}}}, ["$.columns.available.ferry[0]"]),
+        # NumPy reads a boolean beside numbers as 1 or 0; the column names it by index.
+        ({"columns": {"attributes": {"ferry": {"fare": [2.5, True]}}}}, ["$.columns.attributes.ferry.fare[1]"]),
+        ({"columns": {"weight": [1, True, 1]}}, ["$.columns.weight[1]"]),
+        ({"columns": {"context": {"income": [3, None, "x"]}}}, ["$.columns.context.income[1]", "$.columns.context.income[2]"]),
     ],
     ids=["list", "unknown", "both-forms", "neither", "not-list", "not-object", "id-type",
-         "dup-id", "bool", "list-option", "empty-key", "string-column", "int-flags"],
+         "dup-id", "bool", "list-option", "empty-key", "string-column", "int-flags",
+         "bool-among-numbers", "bool-weight", "null-and-string"],
 )  # fmt: skip
 def test_schema_errors_are_400_with_paths(client, payload, expected):
     body = problem(client.post(SCORE, json=payload), 400)
