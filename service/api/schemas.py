@@ -209,13 +209,15 @@ class SituationList(fields.List):
             raise ValidationError("must be a list of situations")
         errors: dict[int, Any] = {}
         seen: set[str] = set()
+        unnamed: list[int] = []
         for i, item in enumerate(value):
             if not isinstance(item, dict):
                 errors[i] = ["must be an object"]
                 continue
-            sid = item.get("id", None)
-            if sid is None:
+            if "id" not in item:
+                unnamed.append(i)
                 continue
+            sid = item["id"]
             if not isinstance(sid, str) or not 0 < len(sid) <= 256:
                 errors[i] = {"id": ["must be a string of 1-256 characters"]}
             elif sid in seen:
@@ -224,6 +226,9 @@ class SituationList(fields.List):
                 seen.add(sid)
             if len(errors) >= 100:
                 break
+        for i in unnamed:  # a situation without an id is answered under its index
+            if str(i) in seen and len(errors) < 100:
+                errors[i] = {"id": [f"missing, and its index {str(i)!r} is another situation's id"]}
         if errors:
             raise ValidationError(errors)
         return value

@@ -62,10 +62,13 @@ def test_malformed_json_is_400(client, text):
         ({"columns": {"attributes": {"ferry": {"fare": [2.5, True]}}}}, ["$.columns.attributes.ferry.fare[1]"]),
         ({"columns": {"weight": [1, True, 1]}}, ["$.columns.weight[1]"]),
         ({"columns": {"context": {"income": [3, None, "x"]}}}, ["$.columns.context.income[1]", "$.columns.context.income[2]"]),
+        ({"situations": [{**situation(0), "id": None}]}, ["$.situations[0].id"]),
+        # The second has no id, so it would be answered as "1": taken by the first.
+        ({"situations": [{**situation(0), "id": "1"}, {k: v for k, v in situation(1).items() if k != "id"}]}, ["$.situations[1].id"]),
     ],
     ids=["list", "unknown", "both-forms", "neither", "not-list", "not-object", "id-type",
          "dup-id", "bool", "list-option", "empty-key", "string-column", "int-flags",
-         "bool-among-numbers", "bool-weight", "null-and-string"],
+         "bool-among-numbers", "bool-weight", "null-and-string", "null-id", "index-id-taken"],
 )  # fmt: skip
 def test_schema_errors_are_400_with_paths(client, payload, expected):
     body = problem(client.post(SCORE, json=payload), 400)
