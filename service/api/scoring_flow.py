@@ -73,10 +73,11 @@ def dumps(body: Any) -> str:
     return _ENCODER.encode(body)
 
 
-def read_json() -> Any:
+def read_json(accepted: str = JSON) -> Any:
+    """The JSON body; ``accepted`` names the media types the endpoint takes (for the 415)."""
     if request.mimetype != JSON:
         raise unsupported_media_type(
-            f"send {JSON} or {ARROW}, not {request.mimetype or 'no content type'!r}"
+            f"send {accepted}, not {request.mimetype or 'no content type'!r}"
         )
     raw = read_body()
     try:
@@ -122,7 +123,7 @@ def parse_score_request(config: Settings) -> ParsedRequest:
     """The body as rows, columns or an Arrow table, with the options (400/413/415 problems)."""
     if request.mimetype == ARROW:
         return _parse_arrow(config.max_body_bytes)
-    data = read_json()
+    data = read_json(f"{JSON} or {ARROW}")
     check_size(situation_count(data), config.max_situations)
     loaded = SCORE_REQUEST.load(data) if isinstance(data, dict) else _not_object()
     outputs = outputs_from(loaded["outputs"]) if loaded.get("outputs") else DEFAULT_OUTPUTS

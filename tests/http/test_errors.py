@@ -83,6 +83,15 @@ def test_wrong_media_type_is_415(client):
     problem(client.post(SCORE, data=b"x"), 415)
 
 
+def test_the_415_names_the_media_types_each_endpoint_takes(client):
+    arrow = "application/vnd.apache.arrow.stream"
+    score = problem(client.post(SCORE, data=b"x", content_type="text/csv"), 415)
+    assert f"send application/json or {arrow}, not 'text/csv'" in score["detail"]
+    scenarios = "/v1/models/harbour/scenarios"
+    body = problem(client.post(scenarios, data=b"x", content_type=arrow), 415)
+    assert f"send application/json, not '{arrow}'" in body["detail"]
+
+
 @pytest.mark.parametrize(
     "path",
     [
