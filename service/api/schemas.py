@@ -410,6 +410,13 @@ class VariantResultSchema(Schema):
     )
     surplus_change_mean = FiniteNumber(allow_none=True)
     revenue_change_total = FiniteNumber(allow_none=True)
+    warnings = fields.List(
+        fields.Nested(FieldErrorSchema),
+        metadata={
+            "description": "a variant's own inputs outside the estimation range, at the "
+            "change behind each (base values are warned once, at the top level)"
+        },
+    )
 
 
 class ScenarioResponseSchema(Schema):
@@ -420,7 +427,11 @@ class ScenarioResponseSchema(Schema):
     base = fields.Nested(VariantResultSchema, required=True)
     variants = fields.List(fields.Nested(VariantResultSchema), required=True)
     surplus_unavailable = fields.String(allow_none=True)
-    warnings = fields.List(fields.Nested(FieldErrorSchema))
+    warnings = fields.List(
+        fields.Nested(FieldErrorSchema),
+        metadata={"description": "base inputs outside the estimation range (first 100)"},
+    )
+    warning_count = fields.Integer()
 
 
 class ProblemSchema(Schema):

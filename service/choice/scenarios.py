@@ -63,11 +63,14 @@ class Outcome:
     revenue_total: float | None
     """sum_n w_n revenue_n."""
     warnings: tuple[BatchProblem, ...] = ()
-    """Range-policy warnings of this batch (capped)."""
+    """Range-policy warnings of this batch (capped); of a variant, only those its changes
+    bring (a base value out of range is warned once, in the base)."""
 
 
 @dataclass(frozen=True, eq=False)
 class VariantOutcome(Outcome):
+    located_warnings: tuple[Problem, ...] = ()
+    """``warnings`` located at the change, addition or removal behind each."""
     share_deltas: np.ndarray | None = None
     """(J,) shares minus base shares."""
     surplus_change: np.ndarray | None = None
@@ -117,7 +120,9 @@ def run_scenarios(
     w = base.weights
     base_out = _outcome(model, "base", base, base_check.warnings, None)
     outcomes = []
-    for i, (v, (batch, warns)) in enumerate(zip(variants, batches, strict=True)):
+    in_base = {(p.situation, p.field) for p in base_check.warnings}
+    for i, (v, (batch, all_warns)) in enumerate(zip(variants, batches, strict=True)):
+        warns = tuple(p for p in all_warns if (p.situation, p.field) not in in_base)
         out = _outcome(model, v.name, batch, warns, f"variants[{i}]")
         dcs = total = mean = None
         if alpha is not None:
@@ -136,6 +141,7 @@ def run_scenarios(
                 revenue=out.revenue,
                 revenue_total=out.revenue_total,
                 warnings=out.warnings,
+                located_warnings=tuple(_variant_problem(v, i, p) for p in warns),
                 share_deltas=out.shares - base_out.shares,
                 surplus_change=dcs,
                 surplus_change_total=total,

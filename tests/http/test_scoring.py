@@ -195,6 +195,27 @@ def test_scenarios_against_the_logit_formulas(client):
     assert [shares["ferry"], shares["bike"]] == pytest.approx(list(p0), rel=1e-12)
 
 
+def test_a_variant_that_moves_a_value_out_of_range_is_warned_at_its_change(client):
+    # harbour v1 warns: its fare range is [0, 20]. Situation 1's taxi fare is out of range in
+    # the base already (warned once, at the top); the variant takes every ferry fare to 25.
+    situations = [situation(0), situation(1, taxi__fare=25.0)]
+    body = {
+        "version": "v1",
+        "situations": situations,
+        "variants": [{"name": "ferry at 25", "changes": [
+            {"alternative": "ferry", "attribute": "fare", "op": "set", "value": 25.0}]}],
+    }  # fmt: skip
+    r = client.post("/v1/models/harbour/scenarios", json=body)
+    assert r.status_code == 200, r.get_json()
+    out = ScenarioResponseSchema().load(r.get_json())
+    assert [w["path"] for w in out["warnings"]] == ["$.situations[1].attributes.taxi.fare"]
+    assert out["warning_count"] == 1
+    variant = out["variants"][0]["warnings"]
+    assert [w["path"] for w in variant] == ["$.variants[0].changes[0]"] * 2
+    assert [w["message"].split(":")[0] for w in variant] == ["situation 0", "situation 1"]
+    assert "attributes.ferry.fare" in variant[0]["message"]
+
+
 @pytest.mark.parametrize("policy", ["reject", "clip"])
 def test_range_policies_over_http(fresh_store, policy):
     from http_models import coefficients, spec_dict

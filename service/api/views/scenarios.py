@@ -73,6 +73,9 @@ def _outcome(alternatives: list[str], outcome: Any, path: str) -> dict[str, Any]
         out["share_deltas"] = dict(zip(alternatives, outcome.share_deltas.tolist(), strict=True))
         for name in ("surplus_change_total", "surplus_change_mean", "revenue_change_total"):
             out[name] = _finite(getattr(outcome, name), path, name)
+        out["warnings"] = [
+            {"path": f"$.{w.path}", "message": w.message} for w in outcome.located_warnings
+        ]
     return out
 
 
@@ -157,6 +160,7 @@ def scenarios(name: str) -> Response:
         ],
         "surplus_unavailable": result.surplus_unavailable,
         "warnings": [w.as_dict() for w in decoded.errors(check.warnings)],
+        "warning_count": check.warning_count,
     }
     response = Response(dumps(out), mimetype="application/json")
     response.headers["X-Model-Name"] = name
