@@ -92,11 +92,15 @@ def _convert(name: str, kind: type, raw: Any) -> Any:
     return text or None
 
 
-def load_settings(overrides: Mapping[str, Any] | None = None) -> Settings:
-    """Settings from ``CHOICECAST_*`` variables, then ``overrides`` (keys as field names)."""
+def load_settings(
+    overrides: Mapping[str, Any] | None = None, environ: Mapping[str, str] | None = None
+) -> Settings:
+    """Settings from ``CHOICECAST_*`` variables of ``environ`` (default: this process's),
+    then ``overrides`` (keys as field names)."""
+    environ = os.environ if environ is None else environ
     values: dict[str, Any] = {}
     for name, kind in _FIELDS.items():
-        raw = os.environ.get(ENV_PREFIX + name.upper())
+        raw = environ.get(ENV_PREFIX + name.upper())
         if raw is not None:
             values[name] = _convert(name, kind, raw)
     for name, raw in (overrides or {}).items():

@@ -87,5 +87,13 @@ def run(
     if workers < 1:
         raise SystemExit("choicecast serve: --workers must be at least 1")
     env = environment(store_uri, options)
+    # Settings and tokens are checked here, so a bad one is one line, not a worker traceback.
+    from .auth import load_tokens
+    from .config import ConfigError, load_settings
+
+    try:
+        load_tokens(load_settings(environ=env))
+    except ConfigError as exc:
+        raise SystemExit(f"choicecast serve: {exc}") from None
     argv = command(host, port, workers)
     os.execve(argv[0], argv, env)

@@ -41,3 +41,21 @@ def test_environment_passes_options_and_prepares_metrics(tmp_path, monkeypatch):
     assert not list((tmp_path / "m").glob("*.db"))  # a previous run's values are not merged in
     with pytest.raises(TypeError):
         server.environment(None, {"colour": "red"})
+
+
+def test_serve_refuses_a_bad_setting_in_one_line_before_gunicorn_starts(tmp_path, monkeypatch):
+    import subprocess
+    import sys
+
+    env = {
+        "PATH": "/usr/bin:/bin",
+        "CHOICECAST_SCORE_TOKENS": "short",
+        "PROMETHEUS_MULTIPROC_DIR": str(tmp_path / "metrics"),
+    }
+    cli = Path(sys.executable).with_name("choicecast")
+    done = subprocess.run(
+        [str(cli), "serve", "--store", str(tmp_path / "store"), "--port", "1"],
+        env=env, capture_output=True, text=True, timeout=60,
+    )  # fmt: skip
+    assert done.returncode != 0
+    assert done.stderr.strip() == ("choicecast serve: tokens must be at least 16 characters long")
