@@ -74,6 +74,11 @@ def test_rollout_canary_sticky_shadow_promote_rollback(server):
     # A stale expected generation is refused without writing anything.
     stale = change(server, "PUT", "", {**canary, "expected_generation": 0})
     assert stale.status_code == 409
+    # A change the store refuses is a routing problem, named by field.
+    unknown = change(server, "PUT", "", {**canary, "live": {"v9": 1}})
+    assert unknown.status_code == 422
+    assert unknown.json()["type"] == "urn:choicecast:problem:routing-refused"
+    assert [e["path"] for e in unknown.json()["errors"]] == ["$.live.v9"]
 
     r = change(server, "PUT", "", {**canary, "expected_generation": 1})
     assert r.status_code == 200, r.text

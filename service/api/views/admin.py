@@ -16,7 +16,7 @@ from model_store import KEEP_SHADOW
 
 from .. import auth
 from ..context import registry, tokens
-from ..problems import ApiError, FieldError, bad_request, not_found, unavailable, unprocessable
+from ..problems import ApiError, FieldError, bad_request, not_found, unavailable
 from ..schemas import PromoteSchema, RollbackSchema, RoutingChangeSchema
 from ..scoring_flow import read_json
 
@@ -39,6 +39,16 @@ def _operator() -> str:
     return f"{who} (token {fingerprint})"
 
 
+def _refused(errors: list[FieldError]) -> ApiError:
+    return ApiError(
+        422,
+        "routing-refused",
+        "Routing change refused",
+        "the routing change is refused",
+        tuple(errors),
+    )
+
+
 def _store_call(name: str, call: Any) -> Any:
     from model_store import NotFound, RoutingConflict, RoutingError, StoreError, StoreUnavailable
 
@@ -54,11 +64,11 @@ def _store_call(name: str, call: Any) -> Any:
     except RoutingError as exc:
         path, _, message = str(exc).partition(": ")
         error = FieldError(f"$.{path}", message) if message else FieldError("$", str(exc))
-        raise unprocessable("the routing change is refused", [error]) from None
+        raise _refused([error]) from None
     except StoreUnavailable as exc:
         raise unavailable(str(exc)) from None
     except StoreError as exc:
-        raise unprocessable("the routing change is refused", [FieldError("$", str(exc))]) from None
+        raise _refused([FieldError("$", str(exc))]) from None
 
 
 def _changed(state: Any) -> Response:
