@@ -50,11 +50,13 @@ class RoutingState:
 
     def shares(self) -> dict[str, float]:
         """Live weights normalised to sum to 1 (the traffic share of each version)."""
-        top = max(self.live.values(), default=0.0)
-        if not top > 0:
-            return {}
-        total = sum(w / top for w in self.live.values())  # w / top: the sum cannot overflow
-        return {v: w / top / total for v, w in self.live.items()}
+        live = dict(self.live)
+        total = sum(live.values())
+        if total == math.inf:  # weights near the largest float: their proportions
+            top = max(live.values())
+            live = {v: w / top for v, w in live.items()}
+            total = sum(live.values())
+        return {v: w / total for v, w in live.items()} if total > 0 else {}
 
     def versions(self) -> tuple[str, ...]:
         """Every version this state needs loaded: the live ones, then the shadow."""

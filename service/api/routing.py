@@ -34,9 +34,11 @@ def pick(weights: Mapping[str, float], u: float) -> str:
     items = sorted((v, float(w)) for v, w in weights.items() if w > 0)
     if not items:
         raise ValueError("no version has a positive weight")
-    top = max(w for _, w in items)
-    items = [(v, w / top) for v, w in items]  # relative weights: the sum cannot overflow
     total = sum(w for _, w in items)
+    if total == float("inf"):  # weights near the largest float: their proportions
+        top = max(w for _, w in items)
+        items = [(v, w / top) for v, w in items]
+        total = sum(w for _, w in items)
     cumulative = 0.0
     for version, weight in items:
         cumulative += weight / total

@@ -221,6 +221,24 @@ def test_arrow_problems(client):
     assert paths(body) == ["query.logsum"]
 
 
+def test_an_arrow_value_that_fails_to_decode_is_named_once(client):
+    """By its row or column only: not again as the situation's non-finite value."""
+    import pyarrow as pa
+
+    table = long_table([situation(0), situation(1)])
+    fare = table.column_names.index("fare")
+    values = table.column("fare").to_pylist()
+    for cell, message in ((None, "is null"), (float("nan"), "must be a finite number")):
+        bad = table.set_column(fare, "fare", pa.array([values[0], cell, *values[2:]]))
+        body = problem(client.post(SCORE, data=arrow_bytes(bad), content_type=ARROW), 422)
+        assert paths(body) == ["row[1].fare"]
+        assert body["errors"][0]["message"].startswith(message)
+        assert body["detail"].startswith("1 value(s)")
+    text = table.set_column(fare, "fare", pa.array([str(v) for v in values]))
+    body = problem(client.post(SCORE, data=arrow_bytes(text), content_type=ARROW), 422)
+    assert paths(body) == ["column.fare"]
+
+
 def test_limits_are_413(store_uri):
     app = create_app({"store": store_uri, "poll_seconds": 0, "max_situations": 3,
                       "max_body_bytes": 20_000, "access_log": False})  # fmt: skip

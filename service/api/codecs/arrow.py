@@ -103,4 +103,7 @@ def decode_arrow(model: Any, table: pa.Table) -> Decoded:
             return ".".join(p.field) or "situations"
         return f"situation[{id_list[p.situation]}]" + "".join(f".{f}" for f in p.field)
 
-    return Decoded(ids=id_list, batch=batch, problems=errors, locate=locate, form="arrow")
+    undecoded = frozenset(p.column for p in problems)
+    return Decoded(
+        ids=id_list, batch=batch, problems=errors, locate=locate, form="arrow", undecoded=undecoded
+    )

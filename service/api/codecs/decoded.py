@@ -31,6 +31,9 @@ class Decoded:
     """``rows``, ``columns`` or ``arrow``."""
     absent: Absent = never_absent
     """Whether a problem's value was left out of the request (not given as non-finite)."""
+    undecoded: frozenset[str] = frozenset()
+    """Arrow: the columns with a value that failed to decode. The check's findings on those
+    fields are not listed (they would repeat the decoding problem under another name)."""
 
     def errors(self, problems: Sequence[BatchProblem]) -> list[FieldError]:
         return [
@@ -44,9 +47,11 @@ class Decoded:
         if self.problems and self.batch.size == 0:
             return list(self.problems[:MAX_REPORTED]), len(self.problems)
         named = tuple(e.path for e in self.problems)
-        found = self.errors(check.problems)
+        shown = [p for p in check.problems if not (p.field and p.field[-1] in self.undecoded)]
+        found = self.errors(shown)
         later = [e for e in found if not e.path.startswith(named)]
-        count = len(self.problems) + check.problem_count - (len(found) - len(later))
+        hidden = len(check.problems) - len(later)
+        count = len(self.problems) + check.problem_count - hidden
         return [*self.problems, *later][:MAX_REPORTED], count
 
 
