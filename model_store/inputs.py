@@ -22,7 +22,14 @@ from typing import Any
 import numpy as np
 
 from model_store.artifact import check_estimation
-from service.choice.spec import Coefficients, ModelSpec, Problem, SpecError, spec_from_dict
+from service.choice.spec import (
+    Coefficients,
+    ModelSpec,
+    Problem,
+    SpecError,
+    covariance_problems,
+    spec_from_dict,
+)
 
 
 def _read_text(path: str | Path, what: str) -> str:
@@ -197,11 +204,27 @@ def read_model_inputs(
 ) -> tuple[ModelSpec, Coefficients, dict[str, Any]]:
     """Read the three inputs and assemble :class:`Coefficients` (not yet validated against the
     spec: call :func:`~service.choice.spec.validate_model`)."""
-    spec, estimation = read_spec(spec_path)
-    names, est, se = read_coefficients(coefficients_path)
-    covariance = None
+    problems: list[Problem] = []
+    read: dict[str, Any] = {}
+    readers = {
+        "spec": (read_spec, spec_path),
+        "coefficients": (read_coefficients, coefficients_path),
+    }
     if covariance_path is not None:
-        covariance = read_covariance(covariance_path)
+        readers["covariance"] = (read_covariance, covariance_path)
+    for key, (reader, path) in readers.items():  # every file read, every problem listed
+        try:
+            read[key] = reader(path)
+        except SpecError as exc:
+            problems.extend(exc.problems)
+    if problems:
+        if "covariance" in read and "coefficients" not in read:
+            cov_names, matrix = read["covariance"]
+            problems.extend(covariance_problems(matrix, len(cov_names)))
+        raise SpecError(problems)
+    spec, estimation = read["spec"]
+    names, est, se = read["coefficients"]
+    covariance = read.get("covariance")
     coefficients = Coefficients.from_mapping(
         dict(zip(names, est, strict=True)),
         None if se is None else dict(zip(names, se, strict=True)),

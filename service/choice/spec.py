@@ -465,6 +465,27 @@ def spec_to_dict(spec: ModelSpec) -> dict[str, Any]:
 # Checks that need the numbers
 
 
+def covariance_problems(cov: np.ndarray, k: int) -> list[Problem]:
+    """Why ``cov`` is not a k x k covariance matrix: finite, symmetric and positive
+    semi-definite (eigenvalues >= 0 up to rounding; common practice)."""
+    if cov.shape != (k, k):
+        return [Problem("covariance", f"must be {k} x {k}")]
+    if not np.all(np.isfinite(cov)):
+        return [Problem("covariance", "must be finite")]
+    if not np.allclose(cov, cov.T, rtol=1e-10, atol=1e-14):
+        return [Problem("covariance", "must be symmetric")]
+    eig = np.linalg.eigvalsh(cov)
+    tol = 1e-10 * max(1.0, float(np.max(np.abs(eig))))
+    if eig.min() < -tol:
+        return [
+            Problem(
+                "covariance",
+                f"must be positive semi-definite (smallest eigenvalue {eig.min():.3g})",
+            )
+        ]
+    return []
+
+
 def validate_model(spec: ModelSpec, coefficients: Coefficients) -> None:
     """Refuse a spec/coefficient pair that cannot be scored (raises :class:`SpecError`).
 
@@ -509,24 +530,7 @@ def validate_model(spec: ModelSpec, coefficients: Coefficients) -> None:
                     f"scale {nest.scale} = {lam} is above 1; set allow_scale_above_one to accept",
                 )
             )
-    cov = coefficients.covariance
-    if cov is not None:
-        k = len(coefficients.names)
-        if cov.shape != (k, k):
-            problems.append(Problem("covariance", f"must be {k} x {k}"))
-        elif not np.all(np.isfinite(cov)):
-            problems.append(Problem("covariance", "must be finite"))
-        elif not np.allclose(cov, cov.T, rtol=1e-10, atol=1e-14):
-            problems.append(Problem("covariance", "must be symmetric"))
-        else:
-            eig = np.linalg.eigvalsh(cov)
-            tol = 1e-10 * max(1.0, float(np.max(np.abs(eig))))
-            if eig.min() < -tol:
-                problems.append(
-                    Problem(
-                        "covariance",
-                        f"must be positive semi-definite (smallest eigenvalue {eig.min():.3g})",
-                    )
-                )
+    if coefficients.covariance is not None:
+        problems.extend(covariance_problems(coefficients.covariance, len(coefficients.names)))
     if problems:
         raise SpecError(problems)

@@ -168,3 +168,32 @@ def test_validate_json_lists_problems_for_pipelines(capsys, tmp_path):
     assert {"path": "coefficients.b_fare.estimate", "message": "must be a number, not 'cheap'"} in (
         report["problems"]
     )
+
+
+def test_validate_lists_the_problems_of_every_input_file_at_once(capsys, tmp_path):
+    """A coefficient that cannot be read does not hide the covariance's own problem."""
+    spec = tmp_path / "spec.json"
+    spec.write_text(json.dumps(FERRY_SPEC))
+    names = ["asc_fast", "b_fare", "b_minutes", "asc_slow", "b_slow_income"]
+    coefs = tmp_path / "c.csv"
+    coefs.write_text(
+        "name,estimate,std_error\nasc_fast,0.5,0.1\nb_fare,nan,0.01\nb_minutes,-1.2,0.2\n"
+        "asc_slow,0.1,0.1\nb_slow_income,0.02,0.01\n"
+    )
+    rows = [[1.0 if i == j else 0.0 for j in range(5)] for i in range(5)]
+    rows[1][1] = -1.0  # an eigenvalue of -1: not a covariance matrix
+    cov = tmp_path / "cov.csv"
+    cov.write_text(
+        "name,"
+        + ",".join(names)
+        + "\n"
+        + "".join(f"{n}," + ",".join(map(str, r)) + "\n" for n, r in zip(names, rows, strict=True))
+    )
+    code, _, err = run(
+        capsys, "validate", str(spec), "--coefficients", str(coefs), "--covariance", str(cov)
+    )
+    assert code == 2
+    assert err.splitlines()[1:] == [
+        "  coefficients[line 3].b_fare.estimate: must be finite, not 'nan'",
+        "  covariance: must be positive semi-definite (smallest eigenvalue -1)",
+    ]
