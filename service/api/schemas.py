@@ -69,7 +69,7 @@ def _bool_problem(value: Any) -> str | None:
 
 def _item_errors(value: list, problem: Any) -> dict[int, list[str]]:
     """The first offending items by index (marshmallow's form: paths end in ``[i]``); only
-    on the error path, so a valid column never pays a per-value Python test."""
+    on the error path: a valid column pays one ``bool in map(type, ...)`` scan, at C speed."""
     errors: dict[int, list[str]] = {}
     for i, item in enumerate(value):
         message = problem(item)
