@@ -123,6 +123,12 @@ def parse_score_request(config: Settings) -> ParsedRequest:
     """The body as rows, columns or an Arrow table, with the options (400/413/415 problems)."""
     if request.mimetype == ARROW:
         return _parse_arrow(config.max_body_bytes)
+    if request.args:
+        raise bad_request(
+            "a JSON request takes its options in the body (return, routing_key); query "
+            "parameters are for Arrow requests",
+            [FieldError(f"query.{k}", "unknown for a JSON request") for k in request.args],
+        )
     data = read_json(f"{JSON} or {ARROW}")
     check_size(situation_count(data), config.max_situations)
     loaded = SCORE_REQUEST.load(data) if isinstance(data, dict) else _not_object()
@@ -140,8 +146,14 @@ def _not_object() -> Any:
 def _parse_arrow(limit: int) -> ParsedRequest:
     import pyarrow as pa
 
+    given = request.args.to_dict(flat=False)
+    repeated = [
+        FieldError(f"query.{k}", "is given more than once") for k, v in given.items() if len(v) > 1
+    ]
+    if repeated:
+        raise bad_request("the query parameters are not valid", repeated)
     try:
-        query = ARROW_QUERY.load(request.args.to_dict())
+        query = ARROW_QUERY.load({k: v[0] for k, v in given.items()})
     except ValidationError as exc:
         raise bad_request(
             "the query parameters are not valid", marshmallow_errors(exc.messages, "query")

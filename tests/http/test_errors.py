@@ -298,3 +298,18 @@ def test_missing_values_are_named_as_required(client):
 )
 def test_whole_batch_problems_name_the_batch(client, payload, expected):
     assert paths(problem(client.post(SCORE, json=payload), 422)) == [expected]
+
+
+def test_query_parameters_are_named_when_repeated_or_sent_with_json(client):
+    table = long_table([situation(0)])
+    twice = problem(
+        client.post(f"{SCORE}?logsum=true&logsum=false", data=arrow_bytes(table),
+                    content_type=ARROW),
+        400,
+    )  # fmt: skip
+    assert paths(twice) == ["query.logsum"]
+    with_json = problem(
+        client.post(f"{SCORE}?logsum=maybe", json={"situations": [situation(0)]}), 400
+    )
+    assert paths(with_json) == ["query.logsum"]
+    assert "in the body" in with_json["detail"]
