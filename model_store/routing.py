@@ -50,13 +50,7 @@ class RoutingState:
 
     def shares(self) -> dict[str, float]:
         """Live weights normalised to sum to 1 (the traffic share of each version)."""
-        live = dict(self.live)
-        total = sum(live.values())
-        if total == math.inf:  # weights near the largest float: their proportions
-            top = max(live.values())
-            live = {v: w / top for v, w in live.items()}
-            total = sum(live.values())
-        return {v: w / total for v, w in live.items()} if total > 0 else {}
+        return proportions(self.live)
 
     def versions(self) -> tuple[str, ...]:
         """Every version this state needs loaded: the live ones, then the shadow."""
@@ -122,6 +116,19 @@ def decode(model: str, generation: int, data: bytes) -> RoutingState:
         )
     except (ValueError, KeyError, TypeError, AttributeError) as exc:
         raise RoutingError(f"{where} is unreadable: {exc}") from None
+
+
+def proportions(weights: Mapping[str, float]) -> dict[str, float]:
+    """Weights normalised to sum to 1 ({} without a positive sum), summed in sorted version
+    order (the same total on every replica); weights whose sum overflows (near the largest
+    float) are first divided by the largest."""
+    live = {v: float(w) for v, w in sorted(weights.items())}
+    total = sum(live.values())
+    if total == math.inf:
+        top = max(live.values())
+        live = {v: w / top for v, w in live.items()}
+        total = sum(live.values())
+    return {v: w / total for v, w in live.items()} if total > 0 else {}
 
 
 def kept_shadow(base: RoutingState, weights: Mapping[str, float]) -> str | None:

@@ -13,6 +13,8 @@ import random
 from collections.abc import Mapping
 from dataclasses import dataclass
 
+from model_store.routing import proportions
+
 DECISIONS = ("pinned", "key-sticky", "random")
 
 
@@ -31,17 +33,12 @@ def key_position(model: str, key: str) -> float:
 
 def pick(weights: Mapping[str, float], u: float) -> str:
     """The version whose cumulative share (sorted versions) first exceeds ``u``."""
-    items = sorted((v, float(w)) for v, w in weights.items() if w > 0)
+    items = sorted((v, share) for v, share in proportions(weights).items() if share > 0)
     if not items:
         raise ValueError("no version has a positive weight")
-    total = sum(w for _, w in items)
-    if total == float("inf"):  # weights near the largest float: their proportions
-        top = max(w for _, w in items)
-        items = [(v, w / top) for v, w in items]
-        total = sum(w for _, w in items)
     cumulative = 0.0
-    for version, weight in items:
-        cumulative += weight / total
+    for version, share in items:
+        cumulative += share
         if u < cumulative:
             return version
     return items[-1][0]
